@@ -1,0 +1,49 @@
+"""``apg-train``: compose the config, build the records, train, and report where the results are."""
+
+from __future__ import annotations
+
+import logging
+import sys
+from pathlib import Path
+
+import hydra
+import torch
+from hydra.core.hydra_config import HydraConfig
+from omegaconf import DictConfig
+
+from apg import config as app_config  # registers the schemas
+from apg.checkpoint import CheckpointError
+from apg.estimators import make_estimator
+from apg.monitor import ProgressMonitor, TensorBoardMonitor
+from apg.trainer import NonFiniteError, RunExistsError, train
+
+CONFIG_DIR = str(Path(__file__).resolve().parents[2] / "configs")
+log = logging.getLogger("apg.train")
+
+
+def run(cfg: DictConfig) -> dict:
+    """Train from a composed config; returns the final metrics (also written to ``metrics.json``)."""
+    spec = app_config.build(cfg)
+    torch.set_num_threads(spec.threads)
+    run_dir = Path(HydraConfig.get().runtime.output_dir)
+    result = train(spec.system, spec.policy, spec.optim, make_estimator(spec.estimator), spec.train,
+                   seed=spec.seed, run_dir=run_dir, resume=spec.resume, config=spec.config,
+                   monitors=[TensorBoardMonitor(), ProgressMonitor(spec.progress)])
+    m = result.metrics
+    log.info("%s: held-out cost %.4g, success %.1f%% (%s) after %d iterations, %.1f s; run directory %s",
+             m["system"], m["eval_cost"], 100 * m["success_rate"], m["success_criterion"], m["iterations"],
+             m["wall_time_s"], run_dir)
+    return m
+
+
+@hydra.main(version_base="1.3", config_path=CONFIG_DIR, config_name="train")
+def main(cfg: DictConfig) -> None:
+    try:
+        run(cfg)
+    except (ValueError, RunExistsError, NonFiniteError, CheckpointError) as e:
+        log.error("%s", e)
+        sys.exit(2)
+
+
+if __name__ == "__main__":
+    main()

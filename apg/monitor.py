@@ -1,0 +1,106 @@
+"""Monitors the training loop reports to: TensorBoard event files, and a progress bar in the terminal."""
+
+from __future__ import annotations
+
+import sys
+from typing import Any
+
+from apg.plots import trajectory_figure
+from apg.rollout import Evaluation
+from apg.trainer import Monitor, RunInfo
+
+# TensorBoard tags, in one place so docs and tests name the same strings.
+TAGS = {
+    "cost": "train/cost",
+    "grad_norm": "train/grad_norm",
+    "learning_rate": "train/learning_rate",
+    "iteration_seconds": "speed/iteration_seconds",
+    "sim_steps_per_second": "speed/sim_steps_per_second",
+    "eval_cost": "heldout/cost",
+    "success_rate": "heldout/success_rate",
+    "figure": "heldout/trajectories",
+}
+
+
+def _flatten(d: dict[str, Any], prefix: str = "") -> dict[str, Any]:
+    out: dict[str, Any] = {}
+    for k, v in d.items():
+        key = f"{prefix}{k}"
+        if isinstance(v, dict):
+            out.update(_flatten(v, key + "."))
+        elif isinstance(v, (int, float, str, bool)):
+            out[key] = v
+        else:
+            out[key] = str(v)
+    return out
+
+
+class TensorBoardMonitor(Monitor):
+    """Scalars every iteration, held-out metrics and figures, and hyperparameters with final metrics."""
+
+    def __init__(self) -> None:
+        self.writer = None
+
+    def start(self, run: RunInfo) -> None:
+        from torch.utils.tensorboard import SummaryWriter
+
+        self.run = run
+        # purge_step drops events a crashed run wrote after its last checkpoint, so curves never double back.
+        self.writer = SummaryWriter(str(run.run_dir), purge_step=run.start_iteration or None)
+
+    def iteration(self, it: int, stats: dict[str, float]) -> None:
+        for key, tag in TAGS.items():
+            if key in stats:
+                self.writer.add_scalar(tag, stats[key], it)
+
+    def evaluation(self, it: int, result: Evaluation) -> None:
+        self.writer.add_scalar(TAGS["eval_cost"], result.mean_cost, it)
+        self.writer.add_scalar(TAGS["success_rate"], result.success_rate, it)
+        s = self.run.settings
+        if s.figure_every and (it % s.figure_every == 0 or it == s.iterations):
+            fig = trajectory_figure(self.run.system, result.trajectory, result.success, s.figure_trajectories)
+            self.writer.add_figure(TAGS["figure"], fig, it, close=True)
+
+    def end(self, metrics: dict[str, Any]) -> None:
+        hparams = _flatten({k: v for k, v in self.run.config.items() if k not in ("resume", "progress")})
+        finals = {f"final/{k}": float(metrics[k]) for k in ("eval_cost", "success_rate", "wall_time_s")}
+        self.writer.add_hparams(hparams, finals, run_name="hparams")
+
+    def close(self) -> None:
+        if self.writer is not None:
+            self.writer.close()
+            self.writer = None
+
+
+class ProgressMonitor(Monitor):
+    """A tqdm bar with the current training cost and the last held-out result."""
+
+    def __init__(self, enabled: bool = True) -> None:
+        self.enabled = enabled
+        self.bar = None
+        self.postfix: dict[str, str] = {}
+
+    def start(self, run: RunInfo) -> None:
+        if not self.enabled:
+            return
+        from tqdm import tqdm
+
+        self.bar = tqdm(total=run.settings.iterations, initial=run.start_iteration, desc=f"train {run.system.name}",
+                        unit="it", file=sys.stderr, dynamic_ncols=True, mininterval=0.5)
+
+    def iteration(self, it: int, stats: dict[str, float]) -> None:
+        if self.bar is not None:
+            self.postfix["cost"] = f"{stats['cost']:.4g}"
+            self.bar.set_postfix(self.postfix, refresh=False)
+            self.bar.update(it - self.bar.n)
+
+    def evaluation(self, it: int, result: Evaluation) -> None:
+        if self.bar is not None:
+            self.postfix["heldout"] = f"{result.mean_cost:.4g}"
+            self.postfix["success"] = f"{result.success_rate:.0%}"
+            self.bar.set_postfix(self.postfix)
+
+    def close(self) -> None:
+        if self.bar is not None:
+            self.bar.close()
+            self.bar = None

@@ -1,0 +1,107 @@
+"""Acrobot: a two-link planar arm actuated only at the elbow, swung up from hanging.
+
+Equations and the parameter set (unit masses and lengths, centres of mass at mid-link, unit link inertias,
+``g = 9.8``, torque ``|tau| <= 1``) follow Sutton & Barto, *Reinforcement Learning: An Introduction* (1998),
+sec. 11.3, after Spong, *The swing up control problem for the acrobot* (IEEE Control Systems 1995).
+``th1`` is the shoulder angle from hanging straight down, ``th2`` the elbow angle relative to the first link.
+The task is the textbook one: raise the tip one link length above the shoulder. Sutton & Barto also clip
+velocities (4 pi and 9 pi rad/s); that is not differentiable and is left out here.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import torch
+from torch import Tensor
+
+from envs.base import Quantity, System, box_sample, check_record, unit
+
+
+@dataclass(frozen=True)
+class AcrobotParams:
+    link_mass_1: float = unit("kg", 1.0)
+    link_mass_2: float = unit("kg", 1.0)
+    link_length_1: float = unit("m", 1.0)
+    link_length_2: float = unit("m", 1.0)
+    com_1: float = unit("m", 0.5)  # shoulder to centre of mass of link 1
+    com_2: float = unit("m", 0.5)  # elbow to centre of mass of link 2
+    inertia_1: float = unit("kg m^2", 1.0)  # about the centre of mass
+    inertia_2: float = unit("kg m^2", 1.0)
+    gravity: float = unit("m/s^2", 9.8)
+    torque_limit: float = unit("N m", 1.0)
+
+    def __post_init__(self) -> None:
+        check_record(self, positive=tuple(f for f in self.__dataclass_fields__))
+
+
+@dataclass(frozen=True)
+class AcrobotTask:
+    w_height: float = 1.0  # weight on (l1 + l2 - tip height) / (l1 + l2)
+    w_velocity: float = unit("s^2/rad^2", 0.001)
+    w_torque: float = 0.01  # weight on (tau / torque_limit)^2
+    init_low: tuple[float, ...] = (-0.1, -0.1, -0.1, -0.1)  # th1, th2 (rad), th1d, th2d (rad/s)
+    init_high: tuple[float, ...] = (0.1, 0.1, 0.1, 0.1)
+    goal_height: float = unit("m", 1.0)  # success: tip height above the shoulder exceeds this at some time
+
+    def __post_init__(self) -> None:
+        check_record(self, positive=("goal_height",), nonnegative=("w_height", "w_velocity", "w_torque"))
+
+
+class Acrobot(System):
+    name = "acrobot"
+    state = (Quantity("shoulder_angle", "rad", angle=True), Quantity("elbow_angle", "rad", angle=True),
+             Quantity("shoulder_velocity", "rad/s"), Quantity("elbow_velocity", "rad/s"))
+    action = (Quantity("elbow_torque", "N m"),)
+    Params = AcrobotParams
+    Task = AcrobotTask
+    default_dt = 0.05
+
+    @property
+    def action_bound(self) -> tuple[float, ...]:
+        return (float(self.params.torque_limit),)
+
+    def acceleration(self, q: Tensor, qd: Tensor, u: Tensor) -> Tensor:
+        p = self.params
+        m1, m2, l1, lc1, lc2, i1, i2, g = (p.link_mass_1, p.link_mass_2, p.link_length_1, p.com_1, p.com_2,
+                                           p.inertia_1, p.inertia_2, p.gravity)
+        th1, th2, d1th, d2th, tau = q[..., 0], q[..., 1], qd[..., 0], qd[..., 1], u[..., 0]
+        # Sutton & Barto (1998), sec. 11.3.
+        d1 = m1 * lc1 ** 2 + m2 * (l1 ** 2 + lc2 ** 2 + 2 * l1 * lc2 * torch.cos(th2)) + i1 + i2
+        d2 = m2 * (lc2 ** 2 + l1 * lc2 * torch.cos(th2)) + i2
+        phi2 = m2 * lc2 * g * torch.cos(th1 + th2 - math.pi / 2)
+        phi1 = (-m2 * l1 * lc2 * d2th ** 2 * torch.sin(th2) - 2 * m2 * l1 * lc2 * d2th * d1th * torch.sin(th2)
+                + (m1 * lc1 + m2 * l1) * g * torch.cos(th1 - math.pi / 2) + phi2)
+        dd2 = (tau + d2 / d1 * phi1 - m2 * l1 * lc2 * d1th ** 2 * torch.sin(th2) - phi2) / (
+            m2 * lc2 ** 2 + i2 - d2 ** 2 / d1)
+        dd1 = -(d2 * dd2 + phi1) / d1
+        return torch.stack([dd1, dd2], dim=-1)
+
+    def tip_height(self, x: Tensor) -> Tensor:
+        """Height of the tip above the shoulder (m)."""
+        p = self.params
+        return -p.link_length_1 * torch.cos(x[..., 0]) - p.link_length_2 * torch.cos(x[..., 0] + x[..., 1])
+
+    def _shape(self, x: Tensor) -> Tensor:
+        p = self.params
+        reach = p.link_length_1 + p.link_length_2
+        return self.task.w_height * (reach - self.tip_height(x)) / reach + self.task.w_velocity * (
+            x[..., 2] ** 2 + x[..., 3] ** 2)
+
+    def running_cost(self, x: Tensor, u: Tensor) -> Tensor:
+        a = u[..., 0] / self.params.torque_limit
+        return (self._shape(x) + self.task.w_torque * a ** 2) * self.dt
+
+    def terminal_cost(self, x: Tensor) -> Tensor:
+        return self._shape(x)
+
+    def sample_initial(self, n: int, generator: torch.Generator, dtype: torch.dtype = torch.float32) -> Tensor:
+        return box_sample(self.task.init_low, self.task.init_high, n, generator, dtype)
+
+    def success(self, states: Tensor, actions: Tensor) -> Tensor:
+        return (self.tip_height(states) > self.task.goal_height).any(dim=0)
+
+    @property
+    def success_criterion(self) -> str:
+        return f"tip rises more than {self.task.goal_height} m above the shoulder within the horizon"

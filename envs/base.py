@@ -1,0 +1,230 @@
+"""The system interface every simulator implements, and the small records it is built from.
+
+A system is a planar mechanism with generalised coordinates ``q`` and velocities ``qd``; its state is
+``x = [q, qd]`` with shape ``(B, 2 * n_q)``. Subclasses supply the continuous-time acceleration
+``qdd = f(q, qd, u)``; the shared integrators in :mod:`envs.integrators` turn it into a discrete step.
+Everything here is pure torch: no step mutates its inputs, prints or logs.
+"""
+
+from __future__ import annotations
+
+import abc
+import dataclasses
+import math
+from dataclasses import dataclass
+from typing import Any, ClassVar, Mapping
+
+import torch
+from torch import Tensor
+
+from envs.integrators import INTEGRATORS, integrator_step
+
+
+@dataclass(frozen=True)
+class Quantity:
+    """One named entry of a state or action vector."""
+
+    name: str
+    unit: str
+    angle: bool = False  # angles are observed as (sin, cos) so the policy sees no wrap-around
+
+
+def _is_number(v: object) -> bool:
+    return isinstance(v, (int, float)) and not isinstance(v, bool)
+
+
+def check_record(record: object, positive: tuple[str, ...] = (), nonnegative: tuple[str, ...] = ()) -> None:
+    """Validate a parameter record once, at the door.
+
+    Every field must be finite (a Python number or a tensor of per-batch values); those named in
+    ``positive`` must be > 0 and those in ``nonnegative`` >= 0. Raises ``ValueError`` naming the field.
+    """
+    for f in dataclasses.fields(record):  # type: ignore[arg-type]
+        v = getattr(record, f.name)
+        if isinstance(v, Tensor):
+            vals = v.detach()
+        elif _is_number(v):
+            vals = torch.tensor(float(v))
+        elif isinstance(v, tuple) and all(_is_number(e) for e in v):
+            vals = torch.tensor([float(e) for e in v]) if v else torch.zeros(0)
+        else:
+            continue
+        unit = f.metadata.get("unit", "")
+        shown = v.tolist() if isinstance(v, Tensor) else v
+        if not torch.isfinite(vals).all():
+            raise ValueError(f"{f.name} must be finite, got {shown}")
+        if f.name in positive and not (vals > 0).all():
+            raise ValueError(f"{f.name} must be > 0 {unit}".rstrip() + f", got {shown}")
+        if f.name in nonnegative and not (vals >= 0).all():
+            raise ValueError(f"{f.name} must be >= 0 {unit}".rstrip() + f", got {shown}")
+
+
+def make_record(cls: type, values: Mapping[str, Any] | None, what: str) -> Any:
+    """Build the frozen record ``cls`` from a plain mapping (lists become tuples).
+
+    Raises ``ValueError`` for an unknown key (listing the valid ones) or a value out of range, the message
+    prefixed with ``what`` (for example ``system.params``) so it names the offending config key.
+    """
+    values = dict(values or {})
+    known = [f.name for f in dataclasses.fields(cls)]
+    unknown = sorted(set(values) - set(known))
+    if unknown:
+        raise ValueError(f"unknown {what} key(s) {unknown}; valid keys are {known}")
+    values = {k: tuple(v) if isinstance(v, list) else v for k, v in values.items()}
+    try:
+        return cls(**values)
+    except (ValueError, TypeError) as e:
+        raise ValueError(f"{what}.{e}") from None
+
+
+def unit(u: str, default: object) -> object:
+    """A dataclass field with a unit in its metadata (shown in errors and in the docs)."""
+    return dataclasses.field(default=default, metadata={"unit": u})
+
+
+def wrap_angle(a: Tensor) -> Tensor:
+    """Map an angle to (-pi, pi]; smooth almost everywhere, so fine inside a cost."""
+    return torch.atan2(torch.sin(a), torch.cos(a))
+
+
+def box_sample(low: tuple[float, ...], high: tuple[float, ...], n: int, generator: torch.Generator,
+               dtype: torch.dtype) -> Tensor:
+    """Uniform samples from an axis-aligned box, shape ``(n, len(low))``."""
+    lo = torch.tensor(low, dtype=dtype)
+    hi = torch.tensor(high, dtype=dtype)
+    r = torch.rand(n, len(low), generator=generator, dtype=dtype)
+    return lo + (hi - lo) * r
+
+
+class System(abc.ABC):
+    """A deterministic, differentiable planar system with its task.
+
+    Contract (shapes use ``B`` for the batch):
+
+    * ``step(x, u) -> x_next``: ``x`` is ``(B, state_dim)``, ``u`` is ``(B, action_dim)``; float32 or float64;
+      differentiable in ``x``, ``u`` and tensor-valued parameters.
+    * ``observe(x) -> (B, obs_dim)``: angles as ``(sin, cos)``, other entries as they are.
+    * ``running_cost(x, u) -> (B,)`` per step and ``terminal_cost(x) -> (B,)`` at the end of the horizon.
+    * ``sample_initial(n, generator) -> (n, state_dim)``: the task's initial-state distribution.
+    * ``success(states, actions) -> (B,) bool`` on a whole trajectory (``states`` is ``(T+1, B, state_dim)``).
+    * ``action_low`` / ``action_high``: per-action limits in the action's unit.
+
+    Parameters live in ``self.params`` (a frozen record of the subclass's ``Params`` type); any field may be a
+    tensor of shape ``(B,)`` to simulate a different model per batch element.
+    """
+
+    name: ClassVar[str]
+    state: ClassVar[tuple[Quantity, ...]]
+    action: ClassVar[tuple[Quantity, ...]]
+    Params: ClassVar[type]
+    Task: ClassVar[type]
+    default_dt: ClassVar[float]
+
+    def __init__(self, params: object | None = None, task: object | None = None, dt: float | None = None,
+                 integrator: str = "rk4") -> None:
+        self.params = self.Params() if params is None else params
+        self.task = self.Task() if task is None else task
+        if not isinstance(self.params, self.Params):
+            raise TypeError(f"params for {self.name} must be {self.Params.__name__}, got {type(self.params).__name__}")
+        if not isinstance(self.task, self.Task):
+            raise TypeError(f"task for {self.name} must be {self.Task.__name__}, got {type(self.task).__name__}")
+        self.dt = float(self.default_dt if dt is None else dt)
+        if not (math.isfinite(self.dt) and self.dt > 0):
+            raise ValueError(f"dt must be a positive number of seconds, got {dt}")
+        if integrator not in INTEGRATORS:
+            raise ValueError(f"unknown integrator {integrator!r}; choose one of {sorted(INTEGRATORS)}")
+        self.integrator = integrator
+
+    # ---- sizes and names -------------------------------------------------------------------------------
+    @property
+    def state_dim(self) -> int:
+        return len(self.state)
+
+    @property
+    def action_dim(self) -> int:
+        return len(self.action)
+
+    @property
+    def n_q(self) -> int:
+        return self.state_dim // 2
+
+    @property
+    def obs_names(self) -> tuple[str, ...]:
+        names: list[str] = []
+        for s in self.state:
+            names += [f"sin({s.name})", f"cos({s.name})"] if s.angle else [s.name]
+        return tuple(names)
+
+    @property
+    def obs_dim(self) -> int:
+        return len(self.obs_names)
+
+    @property
+    def action_low(self) -> tuple[float, ...]:
+        return tuple(-b for b in self.action_bound)
+
+    @property
+    def action_high(self) -> tuple[float, ...]:
+        return tuple(self.action_bound)
+
+    @property
+    def action_bound(self) -> tuple[float, ...]:
+        """Symmetric limits; systems with asymmetric limits override ``action_low``/``action_high``."""
+        raise NotImplementedError
+
+    def replace(self, **changes: object) -> "System":
+        """A copy with some of ``params``, ``task``, ``dt`` or ``integrator`` replaced."""
+        kw = dict(params=self.params, task=self.task, dt=self.dt, integrator=self.integrator)
+        kw.update(changes)
+        return type(self)(**kw)  # type: ignore[arg-type]
+
+    # ---- dynamics ---------------------------------------------------------------------------------------
+    @abc.abstractmethod
+    def acceleration(self, q: Tensor, qd: Tensor, u: Tensor) -> Tensor:
+        """Continuous-time generalised acceleration ``qdd``, shape ``(B, n_q)``."""
+
+    def step(self, x: Tensor, u: Tensor) -> Tensor:
+        q, qd = x[..., : self.n_q], x[..., self.n_q:]
+        q1, qd1 = integrator_step(self.integrator, self.acceleration, q, qd, u, self.dt)
+        return torch.cat([q1, qd1], dim=-1)
+
+    def derivative(self, x: Tensor, u: Tensor) -> Tensor:
+        """``dx/dt`` of the continuous-time model (for reference integrations and linearisation)."""
+        q, qd = x[..., : self.n_q], x[..., self.n_q:]
+        return torch.cat([qd, self.acceleration(q, qd, u)], dim=-1)
+
+    def observe(self, x: Tensor) -> Tensor:
+        cols = []
+        for i, s in enumerate(self.state):
+            if s.angle:
+                cols += [torch.sin(x[..., i]), torch.cos(x[..., i])]
+            else:
+                cols.append(x[..., i])
+        return torch.stack(cols, dim=-1)
+
+    # ---- task -------------------------------------------------------------------------------------------
+    @abc.abstractmethod
+    def running_cost(self, x: Tensor, u: Tensor) -> Tensor:
+        """Cost of one step, shape ``(B,)``."""
+
+    @abc.abstractmethod
+    def terminal_cost(self, x: Tensor) -> Tensor:
+        """Cost of the final state, shape ``(B,)``."""
+
+    @abc.abstractmethod
+    def sample_initial(self, n: int, generator: torch.Generator, dtype: torch.dtype = torch.float32) -> Tensor:
+        """``n`` initial states from the task's distribution, shape ``(n, state_dim)``."""
+
+    @abc.abstractmethod
+    def success(self, states: Tensor, actions: Tensor) -> Tensor:
+        """Whether each trajectory met the task, shape ``(B,)`` bool."""
+
+    def final_window(self, states: Tensor, seconds: float) -> Tensor:
+        """The last ``seconds`` of a ``(T+1, B, n)`` trajectory (at least one state)."""
+        k = max(1, int(round(seconds / self.dt)))
+        return states[-k:]
+
+    @property
+    def success_criterion(self) -> str:
+        """One sentence saying what ``success`` checks, for reports."""
+        return ""

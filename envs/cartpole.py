@@ -1,0 +1,100 @@
+"""Cart-pole: a uniform pole hinged on a cart driven by a horizontal force.
+
+Equations of motion: Florian, *Correct equations for the dynamics of the cart-pole system* (2007), eqs. (21)-(22)
+with both friction coefficients zero (they then coincide with Barto, Sutton, Anderson 1983). ``th`` is the pole
+angle from upright, positive when the pole's top moves towards +x; ``l`` is the half-length of the pole.
+Two tasks share this model: balance from near upright, and swing up from hanging (``configs/system``).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import torch
+from torch import Tensor
+
+from envs.base import Quantity, System, box_sample, check_record, unit, wrap_angle
+
+
+@dataclass(frozen=True)
+class CartPoleParams:
+    cart_mass: float = unit("kg", 1.0)
+    pole_mass: float = unit("kg", 0.1)
+    half_length: float = unit("m", 0.5)
+    gravity: float = unit("m/s^2", 9.8)
+    force_limit: float = unit("N", 10.0)
+
+    def __post_init__(self) -> None:
+        check_record(self, positive=("cart_mass", "pole_mass", "half_length", "gravity", "force_limit"))
+
+
+@dataclass(frozen=True)
+class CartPoleTask:
+    w_position: float = unit("1/m^2", 0.1)
+    w_angle: float = 1.0  # weight on (1 - cos th)
+    w_velocity: float = unit("s^2/m^2", 0.01)
+    w_angular_velocity: float = unit("s^2/rad^2", 0.01)
+    w_force: float = 0.01  # weight on (u / force_limit)^2
+    init_low: tuple[float, ...] = (-0.5, -0.2, -0.2, -0.2)  # x (m), th (rad), xd (m/s), thd (rad/s)
+    init_high: tuple[float, ...] = (0.5, 0.2, 0.2, 0.2)
+    track_limit: float = unit("m", 2.4)  # success: the cart never leaves |x| < track_limit
+    hold_time: float = unit("s", 1.0)  # ... and the pole is upright for the last hold_time seconds
+    angle_tolerance: float = unit("rad", 0.1)
+    position_tolerance: float = unit("m", 0.5)
+
+    def __post_init__(self) -> None:
+        check_record(self, positive=("track_limit", "hold_time", "angle_tolerance", "position_tolerance"),
+                     nonnegative=("w_position", "w_angle", "w_velocity", "w_angular_velocity", "w_force"))
+
+
+class CartPole(System):
+    name = "cartpole"
+    state = (Quantity("cart_position", "m"), Quantity("pole_angle", "rad", angle=True),
+             Quantity("cart_velocity", "m/s"), Quantity("pole_angular_velocity", "rad/s"))
+    action = (Quantity("force", "N"),)
+    Params = CartPoleParams
+    Task = CartPoleTask
+    default_dt = 0.05
+
+    @property
+    def action_bound(self) -> tuple[float, ...]:
+        return (float(self.params.force_limit),)
+
+    def acceleration(self, q: Tensor, qd: Tensor, u: Tensor) -> Tensor:
+        p = self.params
+        th, thd, f = q[..., 1], qd[..., 1], u[..., 0]
+        total = p.cart_mass + p.pole_mass
+        s, c = torch.sin(th), torch.cos(th)
+        # Florian (2007) eq. (21) and (22) with mu_c = mu_p = 0.
+        thdd = (p.gravity * s + c * (-f - p.pole_mass * p.half_length * thd ** 2 * s) / total) / (
+            p.half_length * (4.0 / 3.0 - p.pole_mass * c ** 2 / total))
+        xdd = (f + p.pole_mass * p.half_length * (thd ** 2 * s - thdd * c)) / total
+        return torch.stack([xdd, thdd], dim=-1)
+
+    def running_cost(self, x: Tensor, u: Tensor) -> Tensor:
+        t = self.task
+        a = u[..., 0] / self.params.force_limit
+        return (t.w_position * x[..., 0] ** 2 + t.w_angle * (1 - torch.cos(x[..., 1])) + t.w_velocity * x[..., 2] ** 2
+                + t.w_angular_velocity * x[..., 3] ** 2 + t.w_force * a ** 2) * self.dt
+
+    def terminal_cost(self, x: Tensor) -> Tensor:
+        t = self.task
+        return (t.w_position * x[..., 0] ** 2 + t.w_angle * (1 - torch.cos(x[..., 1])) + t.w_velocity * x[..., 2] ** 2
+                + t.w_angular_velocity * x[..., 3] ** 2)
+
+    def sample_initial(self, n: int, generator: torch.Generator, dtype: torch.dtype = torch.float32) -> Tensor:
+        return box_sample(self.task.init_low, self.task.init_high, n, generator, dtype)
+
+    def success(self, states: Tensor, actions: Tensor) -> Tensor:
+        t = self.task
+        on_track = (states[..., 0].abs() < t.track_limit).all(dim=0)
+        w = self.final_window(states, t.hold_time)
+        held = ((wrap_angle(w[..., 1]).abs() < t.angle_tolerance) & (w[..., 0].abs() < t.position_tolerance)).all(dim=0)
+        return on_track & held
+
+    @property
+    def success_criterion(self) -> str:
+        t = self.task
+        return (f"cart stays within |x| < {t.track_limit} m; |pole angle| < {t.angle_tolerance} rad and "
+                f"|x| < {t.position_tolerance} m for the last {t.hold_time} s")
+

@@ -1,0 +1,109 @@
+"""Gantry crane: a trolley on a rail carrying a payload on a rope, moved a set distance without residual sway.
+
+Lagrange's equations for a cart with a point-mass pendulum (rope massless and rigid, ``phi`` the sway angle from
+hanging, ``b`` viscous rolling resistance of the trolley):
+
+    (M + m) xdd + m L cos(phi) phidd - m L phid^2 sin(phi) = F - b xd
+    L phidd + cos(phi) xdd + g sin(phi) = 0
+
+(the standard cart-pendulum derivation; the tests check it against the mass-matrix form of the same Lagrangian).
+Default numbers describe the invented Saltmarsh Quay terminal's yard crane: a 5 t trolley, a 10 t container on
+an 8 m hoist, moved 10 m along the rail.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import torch
+from torch import Tensor
+
+from envs.base import Quantity, System, box_sample, check_record, unit
+
+
+@dataclass(frozen=True)
+class CraneParams:
+    trolley_mass: float = unit("kg", 5000.0)
+    load_mass: float = unit("kg", 10000.0)
+    rope_length: float = unit("m", 8.0)
+    gravity: float = unit("m/s^2", 9.81)
+    rolling_resistance: float = unit("N s/m", 500.0)
+    force_limit: float = unit("N", 15000.0)
+
+    def __post_init__(self) -> None:
+        check_record(self, positive=("trolley_mass", "load_mass", "rope_length", "gravity", "force_limit"),
+                     nonnegative=("rolling_resistance",))
+
+
+@dataclass(frozen=True)
+class CraneTask:
+    distance: float = unit("m", 10.0)  # where the trolley must stop
+    w_position: float = unit("1/m^2", 0.05)
+    w_sway: float = unit("1/rad^2", 10.0)
+    w_velocity: float = unit("s^2/m^2", 0.05)
+    w_sway_rate: float = unit("s^2/rad^2", 1.0)
+    w_force: float = 0.01  # weight on (F / force_limit)^2
+    init_low: tuple[float, ...] = (-0.5, -0.05, -0.1, -0.05)  # x (m), phi (rad), xd (m/s), phid (rad/s)
+    init_high: tuple[float, ...] = (0.5, 0.05, 0.1, 0.05)
+    hold_time: float = unit("s", 2.0)  # success: for the last hold_time seconds ...
+    position_tolerance: float = unit("m", 0.1)  # ... the trolley within this of the target
+    sway_tolerance: float = unit("rad", 0.01)  # ... and the load swaying less than this (8 cm at 8 m)
+
+    def __post_init__(self) -> None:
+        check_record(self, positive=("hold_time", "position_tolerance", "sway_tolerance"),
+                     nonnegative=("w_position", "w_sway", "w_velocity", "w_sway_rate", "w_force"))
+
+
+class Crane(System):
+    name = "crane"
+    state = (Quantity("trolley_position", "m"), Quantity("sway_angle", "rad", angle=True),
+             Quantity("trolley_velocity", "m/s"), Quantity("sway_rate", "rad/s"))
+    action = (Quantity("trolley_force", "N"),)
+    Params = CraneParams
+    Task = CraneTask
+    default_dt = 0.1
+
+    @property
+    def action_bound(self) -> tuple[float, ...]:
+        return (float(self.params.force_limit),)
+
+    def acceleration(self, q: Tensor, qd: Tensor, u: Tensor) -> Tensor:
+        p = self.params
+        phi, xd, phid, f = q[..., 1], qd[..., 0], qd[..., 1], u[..., 0]
+        s, c = torch.sin(phi), torch.cos(phi)
+        # Eliminate phidd from the two Lagrange equations above.
+        xdd = (f - p.rolling_resistance * xd + p.load_mass * s * (p.rope_length * phid ** 2 + p.gravity * c)) / (
+            p.trolley_mass + p.load_mass * s ** 2)
+        phidd = -(c * xdd + p.gravity * s) / p.rope_length
+        return torch.stack([xdd, phidd], dim=-1)
+
+    def sway_frequency(self) -> float:
+        """Small-oscillation angular frequency (rad/s) of the free trolley and load, sqrt(g (M + m) / (M L))."""
+        p = self.params
+        return float((p.gravity * (p.trolley_mass + p.load_mass) / (p.trolley_mass * p.rope_length)) ** 0.5)
+
+    def _shape(self, x: Tensor) -> Tensor:
+        t = self.task
+        return (t.w_position * (x[..., 0] - t.distance) ** 2 + t.w_sway * 2 * (1 - torch.cos(x[..., 1]))
+                + t.w_velocity * x[..., 2] ** 2 + t.w_sway_rate * x[..., 3] ** 2)
+
+    def running_cost(self, x: Tensor, u: Tensor) -> Tensor:
+        a = u[..., 0] / self.params.force_limit
+        return (self._shape(x) + self.task.w_force * a ** 2) * self.dt
+
+    def terminal_cost(self, x: Tensor) -> Tensor:
+        return self._shape(x)
+
+    def sample_initial(self, n: int, generator: torch.Generator, dtype: torch.dtype = torch.float32) -> Tensor:
+        return box_sample(self.task.init_low, self.task.init_high, n, generator, dtype)
+
+    def success(self, states: Tensor, actions: Tensor) -> Tensor:
+        t = self.task
+        w = self.final_window(states, t.hold_time)
+        return (((w[..., 0] - t.distance).abs() < t.position_tolerance) & (w[..., 1].abs() < t.sway_tolerance)).all(dim=0)
+
+    @property
+    def success_criterion(self) -> str:
+        t = self.task
+        return (f"trolley within {t.position_tolerance} m of {t.distance} m and sway below {t.sway_tolerance} rad "
+                f"for the last {t.hold_time} s")

@@ -1,0 +1,99 @@
+"""Linear double integrator ``m * xdd = u`` with a quadratic cost: the linear-quadratic reference case.
+
+With the action held over a step (zero-order hold) the exact discrete model is
+``x' = A x + B u``, ``A = [[1, dt], [0, 1]]``, ``B = [[dt^2 / (2 m)], [dt / m]]`` (RK4 reproduces it exactly);
+semi-implicit Euler gives ``B = [[dt^2 / m], [dt / m]]``. The running cost is ``x'Qx + u'Ru`` and the terminal
+cost is ``x'Px`` with ``P`` from the discrete algebraic Riccati equation, so the finite-horizon problem has the
+infinite-horizon LQR gain as its optimal time-invariant policy (Bertsekas, *Dynamic Programming and Optimal
+Control*, vol. 1, sec. 4.1).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from functools import cached_property
+
+import numpy as np
+import scipy.linalg
+import torch
+from torch import Tensor
+
+from envs.base import Quantity, System, box_sample, check_record, unit
+
+
+@dataclass(frozen=True)
+class DoubleIntegratorParams:
+    mass: float = unit("kg", 1.0)
+    force_limit: float = unit("N", 10.0)
+
+    def __post_init__(self) -> None:
+        check_record(self, positive=("mass", "force_limit"))
+
+
+@dataclass(frozen=True)
+class DoubleIntegratorTask:
+    q_position: float = unit("1/m^2", 1.0)  # Q = diag(q_position, q_velocity)
+    q_velocity: float = unit("s^2/m^2", 0.1)
+    r_force: float = unit("1/N^2", 0.1)  # R
+    init_low: tuple[float, ...] = (-2.0, -1.0)  # position (m), velocity (m/s)
+    init_high: tuple[float, ...] = (2.0, 1.0)
+    tolerance: float = unit("m", 0.05)  # success: |position| and |velocity| below this at the end
+
+    def __post_init__(self) -> None:
+        check_record(self, positive=("q_position", "r_force", "tolerance"), nonnegative=("q_velocity",))
+
+
+class DoubleIntegrator(System):
+    name = "double_integrator"
+    state = (Quantity("position", "m"), Quantity("velocity", "m/s"))
+    action = (Quantity("force", "N"),)
+    Params = DoubleIntegratorParams
+    Task = DoubleIntegratorTask
+    default_dt = 0.1
+
+    @property
+    def action_bound(self) -> tuple[float, ...]:
+        return (float(self.params.force_limit),)
+
+    def acceleration(self, q: Tensor, qd: Tensor, u: Tensor) -> Tensor:
+        return (u[..., 0] / self.params.mass).unsqueeze(-1)  # a (B,) mass divides row-wise
+
+    # ---- linear-quadratic structure ---------------------------------------------------------------------
+    def linear_model(self) -> tuple[np.ndarray, np.ndarray]:
+        """Exact discrete ``(A, B)`` of this system's step with its integrator (nominal mass)."""
+        dt, m = self.dt, float(torch.as_tensor(self.params.mass, dtype=torch.float64).mean())
+        a = np.array([[1.0, dt], [0.0, 1.0]])
+        b_pos = dt * dt / m if self.integrator == "semi_implicit_euler" else dt * dt / (2 * m)
+        return a, np.array([[b_pos], [dt / m]])
+
+    @property
+    def Q(self) -> np.ndarray:
+        return np.diag([self.task.q_position, self.task.q_velocity])
+
+    @property
+    def R(self) -> np.ndarray:
+        return np.array([[self.task.r_force]])
+
+    @cached_property
+    def riccati(self) -> np.ndarray:
+        """``P`` of the discrete algebraic Riccati equation; ``x'Px`` is the infinite-horizon cost-to-go."""
+        a, b = self.linear_model()
+        return scipy.linalg.solve_discrete_are(a, b, self.Q, self.R)
+
+    def running_cost(self, x: Tensor, u: Tensor) -> Tensor:
+        t = self.task
+        return t.q_position * x[..., 0] ** 2 + t.q_velocity * x[..., 1] ** 2 + t.r_force * u[..., 0] ** 2
+
+    def terminal_cost(self, x: Tensor) -> Tensor:
+        p = torch.as_tensor(self.riccati, dtype=x.dtype)
+        return torch.einsum("bi,ij,bj->b", x, p, x)
+
+    def sample_initial(self, n: int, generator: torch.Generator, dtype: torch.dtype = torch.float32) -> Tensor:
+        return box_sample(self.task.init_low, self.task.init_high, n, generator, dtype)
+
+    def success(self, states: Tensor, actions: Tensor) -> Tensor:
+        return (states[-1].abs() < self.task.tolerance).all(dim=-1)
+
+    @property
+    def success_criterion(self) -> str:
+        return f"final |position| < {self.task.tolerance} m and |velocity| < {self.task.tolerance} m/s"

@@ -1,0 +1,92 @@
+"""Torque-limited pendulum: a point mass on a massless rod, swung up from any angle and held upright.
+
+``m l^2 thdd = m g l sin(th) - b thd + u`` with ``th`` measured from upright (so ``th = pi`` hangs down). The
+default torque limit is about a third of ``m g l``, too small to lift the mass directly: the policy must pump
+energy over several swings. Equation: any dynamics text, e.g. Strogatz, *Nonlinear Dynamics and Chaos*, sec. 6.7.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import torch
+from torch import Tensor
+
+from envs.base import Quantity, System, box_sample, check_record, unit, wrap_angle
+
+
+@dataclass(frozen=True)
+class PendulumParams:
+    mass: float = unit("kg", 1.0)
+    length: float = unit("m", 1.0)
+    gravity: float = unit("m/s^2", 9.81)
+    damping: float = unit("N m s/rad", 0.01)
+    torque_limit: float = unit("N m", 3.0)
+
+    def __post_init__(self) -> None:
+        check_record(self, positive=("mass", "length", "gravity", "torque_limit"), nonnegative=("damping",))
+
+
+@dataclass(frozen=True)
+class PendulumTask:
+    w_angle: float = 1.0  # weight on (1 - cos th)
+    w_velocity: float = unit("s^2/rad^2", 0.01)
+    w_torque: float = 0.01  # weight on (u / torque_limit)^2
+    init_low: tuple[float, ...] = (-math.pi, -1.0)  # angle (rad), angular velocity (rad/s)
+    init_high: tuple[float, ...] = (math.pi, 1.0)
+    hold_time: float = unit("s", 1.0)  # success: upright for the last hold_time seconds
+    angle_tolerance: float = unit("rad", 0.1)
+    velocity_tolerance: float = unit("rad/s", 0.5)
+
+    def __post_init__(self) -> None:
+        check_record(self, positive=("hold_time", "angle_tolerance", "velocity_tolerance"),
+                     nonnegative=("w_angle", "w_velocity", "w_torque"))
+
+
+class Pendulum(System):
+    name = "pendulum"
+    state = (Quantity("angle", "rad", angle=True), Quantity("angular_velocity", "rad/s"))
+    action = (Quantity("torque", "N m"),)
+    Params = PendulumParams
+    Task = PendulumTask
+    default_dt = 0.05
+
+    @property
+    def action_bound(self) -> tuple[float, ...]:
+        return (float(self.params.torque_limit),)
+
+    def acceleration(self, q: Tensor, qd: Tensor, u: Tensor) -> Tensor:
+        p = self.params
+        ml2 = p.mass * p.length ** 2
+        th, thd = q[..., 0], qd[..., 0]
+        thdd = (p.gravity / p.length) * torch.sin(th) + (u[..., 0] - p.damping * thd) / ml2
+        return thdd.unsqueeze(-1)
+
+    def energy(self, x: Tensor) -> Tensor:
+        """Mechanical energy (J), zero hanging at rest."""
+        p = self.params
+        return 0.5 * p.mass * p.length ** 2 * x[..., 1] ** 2 + p.mass * p.gravity * p.length * (1 + torch.cos(x[..., 0]))
+
+    def running_cost(self, x: Tensor, u: Tensor) -> Tensor:
+        t = self.task
+        a = u[..., 0] / self.params.torque_limit
+        return (t.w_angle * (1 - torch.cos(x[..., 0])) + t.w_velocity * x[..., 1] ** 2 + t.w_torque * a ** 2) * self.dt
+
+    def terminal_cost(self, x: Tensor) -> Tensor:
+        t = self.task
+        return t.w_angle * (1 - torch.cos(x[..., 0])) + t.w_velocity * x[..., 1] ** 2
+
+    def sample_initial(self, n: int, generator: torch.Generator, dtype: torch.dtype = torch.float32) -> Tensor:
+        return box_sample(self.task.init_low, self.task.init_high, n, generator, dtype)
+
+    def success(self, states: Tensor, actions: Tensor) -> Tensor:
+        w = self.final_window(states, self.task.hold_time)
+        ok = (wrap_angle(w[..., 0]).abs() < self.task.angle_tolerance) & (w[..., 1].abs() < self.task.velocity_tolerance)
+        return ok.all(dim=0)
+
+    @property
+    def success_criterion(self) -> str:
+        t = self.task
+        return (f"|angle from upright| < {t.angle_tolerance} rad and |angular velocity| < {t.velocity_tolerance} rad/s "
+                f"for the last {t.hold_time} s")

@@ -1,0 +1,111 @@
+"""Planar quadrotor: a rigid body in the vertical plane with two rotors, flown onto a docking pad.
+
+``m xdd = -(T1 + T2) sin(th)``, ``m zdd = (T1 + T2) cos(th) - m g``, ``I thdd = r (T2 - T1)``, with ``th`` the
+pitch (counter-clockwise positive), ``T1`` the left and ``T2`` the right rotor's thrust and ``r`` the arm from
+the centre to each rotor; a common textbook model (e.g. Tedrake, *Underactuated Robotics*, ch. 3, planar
+quadrotor). Hover needs ``T1 = T2 = m g / 2``. The task: from a random start, reach the hover point above the
+inspection drone's pad and stay there.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import torch
+from torch import Tensor
+
+from envs.base import Quantity, System, box_sample, check_record, unit
+
+
+@dataclass(frozen=True)
+class QuadrotorParams:
+    mass: float = unit("kg", 0.8)
+    arm_length: float = unit("m", 0.15)
+    inertia: float = unit("kg m^2", 0.01)
+    gravity: float = unit("m/s^2", 9.81)
+    thrust_limit: float = unit("N", 8.0)  # per rotor; two rotors give about twice the weight
+
+    def __post_init__(self) -> None:
+        check_record(self, positive=("mass", "arm_length", "inertia", "gravity", "thrust_limit"))
+
+
+@dataclass(frozen=True)
+class QuadrotorTask:
+    target: tuple[float, ...] = (0.0, 1.0)  # hover point above the pad: x (m), z (m)
+    w_position: float = unit("1/m^2", 1.0)
+    w_pitch: float = unit("1/rad^2", 0.1)
+    w_velocity: float = unit("s^2/m^2", 0.1)
+    w_pitch_rate: float = unit("s^2/rad^2", 0.01)
+    w_thrust: float = 0.01  # weight on ((T - hover) / thrust_limit)^2 per rotor
+    init_low: tuple[float, ...] = (-2.0, 0.5, -0.3, -0.5, -0.5, -0.5)  # x, z (m), th (rad), rates (m/s, rad/s)
+    init_high: tuple[float, ...] = (2.0, 2.5, 0.3, 0.5, 0.5, 0.5)
+    hold_time: float = unit("s", 1.0)  # success: for the last hold_time seconds ...
+    position_tolerance: float = unit("m", 0.1)  # ... within this distance of the hover point
+    speed_tolerance: float = unit("m/s", 0.2)  # ... and slower than this
+
+    def __post_init__(self) -> None:
+        if len(self.target) != 2:
+            raise ValueError(f"target must be (x, z) in m, got {self.target}")
+        check_record(self, positive=("hold_time", "position_tolerance", "speed_tolerance"),
+                     nonnegative=("w_position", "w_pitch", "w_velocity", "w_pitch_rate", "w_thrust"))
+
+
+class Quadrotor(System):
+    name = "quadrotor"
+    state = (Quantity("x", "m"), Quantity("z", "m"), Quantity("pitch", "rad", angle=True),
+             Quantity("x_velocity", "m/s"), Quantity("z_velocity", "m/s"), Quantity("pitch_rate", "rad/s"))
+    action = (Quantity("left_thrust", "N"), Quantity("right_thrust", "N"))
+    Params = QuadrotorParams
+    Task = QuadrotorTask
+    default_dt = 0.04
+
+    @property
+    def action_low(self) -> tuple[float, ...]:
+        return (0.0, 0.0)
+
+    @property
+    def action_high(self) -> tuple[float, ...]:
+        return (float(self.params.thrust_limit),) * 2
+
+    @property
+    def hover_thrust(self) -> float:
+        """Per-rotor thrust that holds the craft level and still (N)."""
+        return float(torch.as_tensor(self.params.mass * self.params.gravity, dtype=torch.float64).mean()) / 2
+
+    def acceleration(self, q: Tensor, qd: Tensor, u: Tensor) -> Tensor:
+        p = self.params
+        th, t1, t2 = q[..., 2], u[..., 0], u[..., 1]
+        total = t1 + t2
+        xdd = -total * torch.sin(th) / p.mass
+        zdd = total * torch.cos(th) / p.mass - p.gravity
+        thdd = p.arm_length * (t2 - t1) / p.inertia
+        return torch.stack([xdd, zdd, thdd], dim=-1)
+
+    def _shape(self, x: Tensor) -> Tensor:
+        t = self.task
+        ex, ez = x[..., 0] - t.target[0], x[..., 1] - t.target[1]
+        return (t.w_position * (ex ** 2 + ez ** 2) + t.w_pitch * (1 - torch.cos(x[..., 2])) * 2
+                + t.w_velocity * (x[..., 3] ** 2 + x[..., 4] ** 2) + t.w_pitch_rate * x[..., 5] ** 2)
+
+    def running_cost(self, x: Tensor, u: Tensor) -> Tensor:
+        a = (u - self.hover_thrust) / self.params.thrust_limit
+        return (self._shape(x) + self.task.w_thrust * (a ** 2).sum(dim=-1)) * self.dt
+
+    def terminal_cost(self, x: Tensor) -> Tensor:
+        return self._shape(x)
+
+    def sample_initial(self, n: int, generator: torch.Generator, dtype: torch.dtype = torch.float32) -> Tensor:
+        return box_sample(self.task.init_low, self.task.init_high, n, generator, dtype)
+
+    def success(self, states: Tensor, actions: Tensor) -> Tensor:
+        t = self.task
+        w = self.final_window(states, t.hold_time)
+        dist = torch.hypot(w[..., 0] - t.target[0], w[..., 1] - t.target[1])
+        speed = torch.hypot(w[..., 3], w[..., 4])
+        return ((dist < t.position_tolerance) & (speed < t.speed_tolerance)).all(dim=0)
+
+    @property
+    def success_criterion(self) -> str:
+        t = self.task
+        return (f"within {t.position_tolerance} m of the hover point and slower than {t.speed_tolerance} m/s "
+                f"for the last {t.hold_time} s")
