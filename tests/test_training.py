@@ -83,28 +83,32 @@ def _params(policy):
     return {k: v.clone() for k, v in policy.state_dict().items()}
 
 
-def test_resume_continues_exactly_as_if_never_stopped(tmp_path):
+class _Crash(Monitor):
+    """Raise ``error`` when iteration ``at`` completes, as a crash or Ctrl-C would."""
+
+    def __init__(self, at, error=RuntimeError):
+        self.at, self.error = at, error
+
+    def iteration(self, it, stats):
+        if it == self.at:
+            raise self.error("simulated")
+
+
+def test_resume_after_a_crash_continues_exactly_as_if_never_stopped(tmp_path):
     straight = _train(tmp_path / "a", _settings(iterations=8))
-    _train(tmp_path / "b", _settings(iterations=4))
+    with pytest.raises(RuntimeError, match="simulated"):
+        _train(tmp_path / "b", _settings(iterations=8), monitors=[_Crash(6)])
+    assert load_checkpoint(tmp_path / "b")["iteration"] == 4  # the last checkpoint before the crash
     resumed = _train(tmp_path / "b", _settings(iterations=8), resume=True)
     for k, v in _params(straight.policy).items():
         assert torch.equal(v, resumed.policy.state_dict()[k]), k  # bitwise: same seed, same result on CPU
     assert straight.metrics["env_steps"] == resumed.metrics["env_steps"] == 8 * 16 * 20
 
 
-class _Interrupt(Monitor):
-    def __init__(self, at):
-        self.at = at
-
-    def iteration(self, it, stats):
-        if it == self.at:
-            raise KeyboardInterrupt
-
-
 def test_interrupt_saves_a_checkpoint_that_resumes_exactly(tmp_path):
     straight = _train(tmp_path / "a", _settings(iterations=8))
     with pytest.raises(KeyboardInterrupt):
-        _train(tmp_path / "b", _settings(iterations=8, checkpoint_every=100), monitors=[_Interrupt(3)])
+        _train(tmp_path / "b", _settings(iterations=8, checkpoint_every=100), monitors=[_Crash(3, KeyboardInterrupt)])
     assert load_checkpoint(tmp_path / "b")["iteration"] == 3
     resumed = _train(tmp_path / "b", _settings(iterations=8, checkpoint_every=100), resume=True)
     for k, v in _params(straight.policy).items():

@@ -43,6 +43,8 @@ def main(cfg: DictConfig) -> None:
     except (ValueError, RunExistsError, NonFiniteError, CheckpointError) as e:
         log.error("%s", e)
         sys.exit(2)
+    except KeyboardInterrupt:
+        sys.exit(130)  # the trainer has saved a checkpoint and said where
 
 
 if __name__ == "__main__":
