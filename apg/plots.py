@@ -19,7 +19,9 @@ def trajectory_figure(system: System, traj: Trajectory, success=None, count: int
     actions = traj.actions[:, :count].detach().cpu().double().numpy()  # (T, n, nu)
     ok = None if success is None else success[:count].cpu().numpy()
     t = np.arange(states.shape[0]) * system.dt
-    entries = [(s.name, s.unit, states[..., i], t) for i, s in enumerate(system.state)]
+    # Angles wrapped to (-pi, pi] so "upright" reads as 0 however many turns were made.
+    entries = [(s.name, s.unit, np.angle(np.exp(1j * states[..., i])) if s.angle else states[..., i], t)
+               for i, s in enumerate(system.state)]
     entries += [(a.name, a.unit, actions[..., i], t[:-1]) for i, a in enumerate(system.action)]
     cols = 2
     rows = (len(entries) + cols - 1) // cols

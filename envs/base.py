@@ -47,6 +47,8 @@ def check_record(record: object, positive: tuple[str, ...] = (), nonnegative: tu
             vals = torch.tensor(float(v))
         elif isinstance(v, tuple) and all(_is_number(e) for e in v):
             vals = torch.tensor([float(e) for e in v]) if v else torch.zeros(0)
+        elif _is_number(f.default):
+            raise ValueError(f"{f.name} must be a number or a tensor of per-batch values, got {v!r}")
         else:
             continue
         unit = f.metadata.get("unit", "")

@@ -88,7 +88,12 @@ class Quadrotor(System):
                 + t.w_velocity * (x[..., 3] ** 2 + x[..., 4] ** 2) + t.w_pitch_rate * x[..., 5] ** 2)
 
     def running_cost(self, x: Tensor, u: Tensor) -> Tensor:
-        a = (u - self.hover_thrust) / self.params.thrust_limit
+        p = self.params
+        hover = p.mass * p.gravity / 2  # per row when the parameters are per-batch tensors
+        if isinstance(hover, Tensor):
+            hover = hover.unsqueeze(-1)
+        limit = p.thrust_limit.unsqueeze(-1) if isinstance(p.thrust_limit, Tensor) else p.thrust_limit
+        a = (u - hover) / limit
         return (self._shape(x) + self.task.w_thrust * (a ** 2).sum(dim=-1)) * self.dt
 
     def terminal_cost(self, x: Tensor) -> Tensor:

@@ -77,8 +77,8 @@ def test_step_gradcheck_state_and_action(name, integrator):
     assert gradcheck(lambda x, v: system.step(x, centre + half * v), (x, v), **GC)
 
 
-# (field, nominal value scale) for a physical parameter of each system; the parameter is passed as
-# nominal * k with k a (B,) tensor near 1 requiring grad, so its derivative has a usable size.
+# One physical parameter per system, passed as nominal * k with k a (B,) tensor near 1 requiring grad (so the
+# derivative has a usable size even for the crane's 10 t load).
 PARAM_FIELDS = {
     "double_integrator": "mass",
     "pendulum": "mass",
