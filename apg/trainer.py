@@ -52,13 +52,15 @@ class TrainSettings:
     figure_every: int = 100  # iterations between trajectory figures in TensorBoard; 0 turns them off
     figure_trajectories: int = 8
     dtype: str = "float32"  # float32 | float64
+    max_env_steps: int = 0  # stop once this many simulator steps are spent (0: no limit); for equal-budget races
+    max_wall_seconds: float = 0.0  # stop after this much training time (0: no limit)
 
     def __post_init__(self) -> None:
         if self.dtype not in DTYPES:
             raise ValueError(f"dtype must be one of {', '.join(DTYPES)}; got {self.dtype!r}")
         check_record(self, positive=("iterations", "batch_size", "horizon", "eval_every", "eval_batch",
                                      "checkpoint_every", "figure_trajectories"),
-                     nonnegative=("grad_clip", "eval_horizon", "figure_every"))
+                     nonnegative=("grad_clip", "eval_horizon", "figure_every", "max_env_steps", "max_wall_seconds"))
 
     @property
     def eval_steps(self) -> int:
@@ -205,16 +207,21 @@ def train(system: System, policy_settings: PolicySettings, optim_settings: Optim
     def run_eval(iteration: int) -> None:
         nonlocal last_eval
         result = evaluate(system, policy, x_eval, settings.eval_steps)
-        last_eval = {"iteration": iteration, "eval_cost": result.mean_cost, "success_rate": result.success_rate}
+        last_eval = {"iteration": iteration, "eval_cost": result.mean_cost, "success_rate": result.success_rate,
+                     "env_steps": env_steps, "wall_time_s": elapsed()}
         for m in monitors:
             m.evaluation(iteration, result)
+
+    def budget_spent() -> bool:
+        return bool((settings.max_env_steps and env_steps >= settings.max_env_steps)
+                    or (settings.max_wall_seconds and elapsed() >= settings.max_wall_seconds))
 
     params = list(policy.parameters())
     it = start
     try:
         if start == 0:
             run_eval(0)
-        while it < settings.iterations:
+        while it < settings.iterations and not budget_spent():
             t0 = time.perf_counter()
             lr = learning_rate(optim_settings, it, settings.iterations)
             for group in optimiser.param_groups:
@@ -246,12 +253,13 @@ def train(system: System, policy_settings: PolicySettings, optim_settings: Optim
             dt_iter = time.perf_counter() - t0
             stats = {"cost": float(est.loss), "grad_norm": float(grad_norm), "learning_rate": lr,
                      "iteration_seconds": dt_iter, "sim_steps_per_second": est.sim_steps / max(dt_iter, 1e-9),
-                     "env_steps": float(env_steps)}
+                     "env_steps": float(env_steps), "wall_time_s": elapsed()}
             for m in monitors:
                 m.iteration(it, stats)
-            if it % settings.eval_every == 0 or it == settings.iterations:
+            last = it == settings.iterations or budget_spent()
+            if it % settings.eval_every == 0 or last:
                 run_eval(it)
-            if it % settings.checkpoint_every == 0 or it == settings.iterations:
+            if it % settings.checkpoint_every == 0 or last:
                 checkpoint(it)
     except KeyboardInterrupt:
         # The policy is consistent after every completed iteration: save it so nothing is lost.

@@ -142,6 +142,13 @@ def test_non_finite_rollout_stops_with_iteration_and_keeps_last_checkpoint(tmp_p
     assert not (tmp_path / "metrics.json").exists()
 
 
+def test_simulator_step_budget_stops_training(tmp_path):
+    # 16 x 20 = 320 steps an iteration: a budget of 1000 steps ends after the 4th iteration (1280 >= 1000).
+    result = _train(tmp_path, _settings(iterations=100, max_env_steps=1000))
+    assert result.metrics["iterations"] == 4 and result.metrics["env_steps"] == 1280
+    assert load_checkpoint(tmp_path)["iteration"] == 4
+
+
 def test_metrics_file_has_the_documented_keys(tmp_path):
     result = _train(tmp_path, _settings())
     metrics = json.loads((tmp_path / "metrics.json").read_text())
