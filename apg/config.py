@@ -11,12 +11,13 @@ from __future__ import annotations
 import dataclasses
 import typing
 from dataclasses import dataclass, field
-from typing import Any, List, Optional
+from typing import Any, Dict, List, Optional
 
 from hydra.core.config_store import ConfigStore
 from omegaconf import MISSING, DictConfig, OmegaConf
 
 import envs
+from apg.ensemble import ParameterRanges
 from apg.estimators import EstimatorSettings
 from apg.optim import OptimSettings
 from apg.policies import PolicySettings
@@ -57,6 +58,8 @@ def system_schema(cls: type[System]) -> type:
         ("integrator", str, field(default="rk4")),
         ("params", params, field(default_factory=params)),
         ("task", task, field(default_factory=task)),
+        # Train over a model ensemble: {parameter: [low, high]}, drawn per minibatch element.
+        ("ensemble", Dict[str, List[float]], field(default_factory=dict)),
     ])
 
 
@@ -95,6 +98,7 @@ class RunSpec:
     """Everything ``apg-train`` needs, as library records (no DictConfig beyond this point)."""
 
     system: System
+    ensemble: ParameterRanges
     policy: PolicySettings
     optim: OptimSettings
     estimator: EstimatorSettings
@@ -116,11 +120,13 @@ def build(cfg: DictConfig | dict) -> RunSpec:
                            integrator=sysc.get("integrator", "rk4"))
     except ValueError as e:
         raise ValueError(f"system: {e}") from None
+    ensemble = ParameterRanges.from_mapping(sysc.get("ensemble"))
+    ensemble.check(system)
     threads = int(plain.get("threads", 1))
     if threads < 1:
         raise ValueError(f"threads must be >= 1, got {threads}")
     return RunSpec(
-        system=system,
+        system=system, ensemble=ensemble,
         policy=make_record(PolicySettings, plain["policy"], "policy"),
         optim=make_record(OptimSettings, plain["optim"], "optim"),
         estimator=make_record(EstimatorSettings, plain["estimator"], "estimator"),

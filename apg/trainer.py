@@ -21,6 +21,7 @@ import yaml
 from torch import Tensor
 
 from apg.checkpoint import CHECKPOINT_NAME, atomic_write_text, config_digest, load_checkpoint, save_checkpoint
+from apg.ensemble import ParameterRanges
 from apg.estimators import GradientEstimator
 from apg.optim import OptimSettings, learning_rate, make_optimiser
 from apg.policies import Policy, PolicySettings, make_policy
@@ -138,17 +139,21 @@ def _check_resumable(saved: dict[str, Any], config: dict[str, Any], path: Path) 
 def train(system: System, policy_settings: PolicySettings, optim_settings: OptimSettings,
           estimator: GradientEstimator, settings: TrainSettings, *, seed: int, run_dir: Path,
           resume: bool = False, config: dict[str, Any] | None = None,
-          monitors: Sequence[Monitor] = ()) -> TrainResult:
+          monitors: Sequence[Monitor] = (), ensemble: ParameterRanges | None = None) -> TrainResult:
     """Train a policy for ``system`` and write checkpoints and ``metrics.json`` into ``run_dir``.
 
     Args:
         config: the plain run config, saved in every checkpoint and compared on resume.
         resume: continue from ``run_dir/checkpoint.pt``; without it an existing checkpoint is an error.
+        ensemble: train over models drawn per minibatch element from these parameter ranges; held-out
+            evaluation stays on the nominal ``system``.
 
     Raises:
         RunExistsError: ``run_dir`` holds a run and ``resume`` is false, or the saved run's config differs.
         NonFiniteError: NaN/Inf in the cost or gradient; the last good checkpoint is left in place.
     """
+    if ensemble:
+        ensemble.check(system)
     run_dir = Path(run_dir)
     run_dir.mkdir(parents=True, exist_ok=True)
     ckpt_path = run_dir / CHECKPOINT_NAME
@@ -227,7 +232,8 @@ def train(system: System, policy_settings: PolicySettings, optim_settings: Optim
             for group in optimiser.param_groups:
                 group["lr"] = lr
             x0 = system.sample_initial(settings.batch_size, train_gen, dtype)
-            est = estimator.estimate(system, policy, x0, settings.horizon, estimator_gen)
+            models = ensemble.sample(system, settings.batch_size, train_gen, dtype) if ensemble else system
+            est = estimator.estimate(models, policy, x0, settings.horizon, estimator_gen)
             grad_norm = torch.linalg.vector_norm(torch.stack([torch.linalg.vector_norm(g) for g in est.grads]))
             if not (torch.isfinite(est.loss) and torch.isfinite(grad_norm)):
                 where = ""

@@ -206,3 +206,40 @@ def test_bad_settings_are_named():
         OptimSettings(lr=-1.0)
     with pytest.raises(ValueError, match="squash=none"):
         Policy(PolicySettings(), 2, (-float("inf"),), (float("inf"),))
+
+
+def test_ensemble_draws_one_model_per_batch_element_inside_the_ranges():
+    from apg.ensemble import ParameterRanges
+
+    system = envs.make("crane")
+    ranges = ParameterRanges.from_mapping({"load_mass": [8000.0, 12000.0], "rope_length": [6.0, 10.0]})
+    models = ranges.sample(system, 256, torch.Generator().manual_seed(0), torch.float64)
+    for name, low, high in ranges.ranges:
+        v = getattr(models.params, name)
+        assert v.shape == (256,) and (v >= low).all() and (v <= high).all() and v.std() > 0
+    assert models.params.trolley_mass == system.params.trolley_mass  # unranged parameters stay nominal
+    with pytest.raises(ValueError, match="system.ensemble.load_mas"):
+        ParameterRanges.from_mapping({"load_mas": [1.0, 2.0]}).check(system)
+    with pytest.raises(ValueError, match="load_mass must be > 0"):
+        ParameterRanges.from_mapping({"load_mass": [-1.0, 2.0]}).check(system)
+    with pytest.raises(ValueError, match="low <= high"):
+        ParameterRanges.from_mapping({"load_mass": [3.0, 2.0]})
+
+
+def test_ensemble_training_resumes_exactly(tmp_path):
+    from apg.ensemble import ParameterRanges
+
+    ranges = ParameterRanges.from_mapping({"mass": [0.8, 1.2], "length": [0.9, 1.1]})
+
+    def run(d, resume=False, monitors=()):
+        return train(envs.make("pendulum"), PolicySettings(hidden=(16,)), OptimSettings(lr=1e-2), Analytic(),
+                     _settings(), seed=0, run_dir=d, resume=resume, monitors=monitors, ensemble=ranges)
+
+    straight = run(tmp_path / "a")
+    with pytest.raises(RuntimeError):
+        run(tmp_path / "b", monitors=[_Crash(6)])
+    resumed = run(tmp_path / "b", resume=True)
+    for k, v in _params(straight.policy).items():
+        assert torch.equal(v, resumed.policy.state_dict()[k]), k
+    plain = _train(tmp_path / "c", _settings(), seed=0, policy=PolicySettings(hidden=(16,)))
+    assert not torch.equal(plain.policy.net[0].weight, straight.policy.net[0].weight)  # the ensemble mattered

@@ -28,7 +28,7 @@ def run(cfg: DictConfig) -> dict:
     run_dir = Path(HydraConfig.get().runtime.output_dir)
     result = train(spec.system, spec.policy, spec.optim, make_estimator(spec.estimator), spec.train,
                    seed=spec.seed, run_dir=run_dir, resume=spec.resume, config=spec.config,
-                   monitors=[TensorBoardMonitor(), ProgressMonitor(spec.progress)])
+                   monitors=[TensorBoardMonitor(), ProgressMonitor(spec.progress)], ensemble=spec.ensemble)
     m = result.metrics
     log.info("%s: held-out cost %.4g, success %.1f%% (%s) after %d iterations, %.1f s; run directory %s",
              m["system"], m["eval_cost"], 100 * m["success_rate"], m["success_criterion"], m["iterations"],
