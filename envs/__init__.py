@@ -3,7 +3,7 @@
 >>> import envs
 >>> sys = envs.make("pendulum", params={"torque_limit": 2.0})
 >>> envs.available()
-('acrobot', 'cartpole', 'crane', 'double_integrator', 'pendulum', 'quadrotor')
+('acrobot', 'cartpole', 'crane', 'double_integrator', 'hopper', 'paddle', 'pendulum', 'quadrotor')
 """
 
 from __future__ import annotations
@@ -15,12 +15,14 @@ from envs.base import Quantity, System, make_record
 from envs.cartpole import CartPole
 from envs.crane import Crane
 from envs.double_integrator import DoubleIntegrator
+from envs.hopper import Hopper
 from envs.integrators import INTEGRATORS
+from envs.paddle import Paddle
 from envs.pendulum import Pendulum
 from envs.quadrotor import Quadrotor
 
 REGISTRY: dict[str, type[System]] = {cls.name: cls for cls in (DoubleIntegrator, Pendulum, CartPole, Acrobot,
-                                                                 Quadrotor, Crane)}
+                                                                 Quadrotor, Crane, Hopper, Paddle)}
 
 
 def available() -> tuple[str, ...]:
@@ -49,4 +51,4 @@ def make(name: str, params: Mapping[str, Any] | None = None, task: Mapping[str, 
 
 
 __all__ = ["System", "Quantity", "REGISTRY", "INTEGRATORS", "available", "make", "system_class", "Acrobot", "CartPole",
-           "Crane", "DoubleIntegrator", "Pendulum", "Quadrotor"]
+           "Crane", "DoubleIntegrator", "Hopper", "Paddle", "Pendulum", "Quadrotor"]

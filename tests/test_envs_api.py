@@ -23,6 +23,8 @@ POSITIVE_FIELDS = {
     "acrobot": ("link_mass_1", "com_2"),
     "quadrotor": ("mass", "arm_length"),
     "crane": ("trolley_mass", "rope_length"),
+    "hopper": ("body_mass", "leg_rest_length"),
+    "paddle": ("ball_mass", "contact_stiffness"),
 }
 
 
@@ -38,8 +40,9 @@ def inputs(system, n: int, dtype: torch.dtype, seed: int = 0):
 # ---------------------------------------------------------------------------------------------------------------
 # registry
 # ---------------------------------------------------------------------------------------------------------------
-def test_available_lists_all_six_systems():
-    assert envs.available() == ("acrobot", "cartpole", "crane", "double_integrator", "pendulum", "quadrotor")
+def test_available_lists_all_eight_systems():
+    assert envs.available() == ("acrobot", "cartpole", "crane", "double_integrator", "hopper", "paddle", "pendulum",
+                                "quadrotor")
     for name in envs.available():
         system = envs.make(name)
         assert system.name == name and isinstance(system, envs.System)
@@ -255,6 +258,12 @@ def goal_and_failure_states(system) -> tuple[list[float], list[float]]:
         return [tx, tz, 0.0, 0.0, 0.0, 0.0], [tx, tz - 1.0, 0.0, 0.0, 0.0, 0.0]  # at the hover point vs 1 m low
     if system.name == "crane":
         return [system.task.distance, 0.0, 0.0, 0.0], [0.0, 0.0, 0.0, 0.0]  # at the target vs at the start
+    if system.name == "hopper":
+        z, leg = system.params.standing_height, -system.params.leg_rest_length
+        return [system.task.mark, z, 0.0, leg] + [0.0] * 4, [0.0, z, 0.0, leg] + [0.0] * 4  # at the mark vs start
+    if system.name == "paddle":
+        # in flight at the apex height vs lying on the paddle (never flying)
+        return [system.task.target, 0.0, 0.0, 0.0], [system.params.ball_radius, 0.0, 0.0, 0.0]
     return {
         "double_integrator": ([0.0, 0.0], [1.0, 0.0]),
         "pendulum": ([0.0, 0.0], [math.pi, 0.0]),  # upright vs hanging
@@ -267,14 +276,14 @@ def goal_and_failure_states(system) -> tuple[list[float], list[float]]:
 def test_success_is_a_bool_per_trajectory_and_means_something(name):
     system = envs.make(name)
     good, bad = goal_and_failure_states(system)
-    steps = 60  # longer than every task's hold time (at most 2 s at the default dt)
+    steps = max(60, round(2.5 / system.dt))  # longer than every task's hold time (at most 2 s)
     states = torch.tensor([good, bad], dtype=torch.float64).expand(steps + 1, 2, system.state_dim)
     actions = torch.zeros(steps, 2, system.action_dim, dtype=torch.float64)
     ok = system.success(states, actions)
     assert ok.dtype == torch.bool and ok.shape == (2,)
     assert ok.tolist() == [True, False]
     # tasks with a hold time: reaching the goal only at the very last state is not holding it
-    if name in ("pendulum", "cartpole", "quadrotor", "crane"):
+    if name in ("pendulum", "cartpole", "quadrotor", "crane", "hopper", "paddle"):
         late = states[:, 1:].clone()
         late[-1] = torch.tensor(good, dtype=torch.float64)
         assert system.success(late, actions[:, 1:]).tolist() == [False]
@@ -284,7 +293,7 @@ def test_success_is_a_bool_per_trajectory_and_means_something(name):
 def test_success_uses_dt_for_the_hold_window(name):
     # final_window keeps round(seconds / dt) states (at least one): the window must scale with dt
     system = envs.make(name)
-    states = torch.zeros(101, 1, system.state_dim)
+    states = torch.zeros(max(101, round(3.0 / system.dt)), 1, system.state_dim)  # longer than 2 s
     assert system.final_window(states, 1.0).shape[0] == max(1, round(1.0 / system.dt))
     assert system.replace(dt=system.dt / 2).final_window(states, 1.0).shape[0] == max(1, round(2.0 / system.dt))
     assert system.final_window(states, 1e-9).shape[0] == 1

@@ -86,6 +86,8 @@ PARAM_FIELDS = {
     "acrobot": "inertia_2",
     "quadrotor": "inertia",
     "crane": "load_mass",
+    "hopper": "body_mass",
+    "paddle": "paddle_mass",
 }
 
 
