@@ -9,6 +9,7 @@ own checks reject out-of-range values. Importing this module registers the schem
 from __future__ import annotations
 
 import dataclasses
+import os
 import typing
 from dataclasses import dataclass, field
 from typing import Any, Dict, List, Optional
@@ -79,8 +80,15 @@ class AppSchema:
     experiment: Optional[str] = None  # set by configs/experiment/*.yaml, recorded in the metrics
 
 
+def rank_suffix() -> str:
+    """``""`` without ``torchrun`` or on rank 0, ``.rank<N>`` on the others: keeps per-rank log files apart."""
+    rank = os.environ.get("RANK", "0")
+    return "" if rank in ("", "0") else f".rank{rank}"
+
+
 def register() -> None:
-    """Put every schema in Hydra's ConfigStore (idempotent)."""
+    """Put every schema in Hydra's ConfigStore and the ``apg_rank_suffix`` resolver in OmegaConf (idempotent)."""
+    OmegaConf.register_new_resolver("apg_rank_suffix", rank_suffix, replace=True)
     cs = ConfigStore.instance()
     cs.store(name="app_schema", node=AppSchema)
     for cls in envs.REGISTRY.values():

@@ -1,11 +1,21 @@
-"""Batched closed-loop rollouts: ``x_{t+1} = step(x_t, pi(observe(x_t)))`` for a fixed horizon."""
+"""Batched closed-loop rollouts: ``x_{t+1} = step(x_t, pi(observe(x_t)))`` for a fixed horizon.
+
+Two options change how a differentiable rollout runs, never what it computes (beyond float rounding):
+``checkpoint_every=k`` keeps only the state at every k-th step for the backward pass and recomputes each window
+of k steps when it is needed (activation checkpointing, Chen, Xu, Zhang, Guestrin 2016, "Training deep nets
+with sublinear memory cost"; ``torch.utils.checkpoint``), and ``compile=True`` runs the closed-loop step
+through ``torch.compile``.
+"""
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+import functools
+from dataclasses import asdict, dataclass
+from typing import Any, Callable
 
 import torch
 from torch import Tensor, nn
+from torch.utils.checkpoint import checkpoint
 
 from envs.base import System
 
@@ -36,19 +46,80 @@ class Trajectory:
         return Trajectory(self.states.detach(), self.actions.detach(), self.costs.detach(), self.terminal.detach())
 
 
-def rollout(system: System, policy: nn.Module, x0: Tensor, horizon: int) -> Trajectory:
-    """Roll ``policy`` out on ``system`` from ``x0`` ``(B, state_dim)`` for ``horizon`` steps, differentiably."""
-    if horizon < 1:
-        raise ValueError(f"horizon must be >= 1 step, got {horizon}")
-    x = x0
-    states, actions, costs = [x0], [], []
-    for _ in range(horizon):
-        u = policy(system.observe(x))
-        costs.append(system.running_cost(x, u))
-        x = system.step(x, u)
+@dataclass(frozen=True)
+class RolloutOptions:
+    """How :func:`rollout` runs (its keyword options as one record, for estimators to carry)."""
+
+    checkpoint_every: int = 0  # steps per activation-checkpointing window; 0 keeps every activation
+    compile: bool = False  # run the closed-loop step through torch.compile
+
+    def __post_init__(self) -> None:
+        if not isinstance(self.checkpoint_every, int) or self.checkpoint_every < 0:
+            raise ValueError(f"checkpoint_every must be a whole number of steps >= 0, got {self.checkpoint_every!r}")
+
+    def as_kwargs(self) -> dict[str, Any]:
+        return asdict(self)
+
+
+StepFn = Callable[[System, nn.Module, Tensor], "tuple[Tensor, Tensor, Tensor]"]
+
+
+def _closed_loop_step(system: System, policy: nn.Module, x: Tensor) -> tuple[Tensor, Tensor, Tensor]:
+    """One step: ``(x_next, u, running_cost)`` from ``x`` ``(B, state_dim)``."""
+    u = policy(system.observe(x))
+    return system.step(x, u), u, system.running_cost(x, u)
+
+
+@functools.cache
+def _compiled_step() -> StepFn:
+    # One compiled function per process: torch.compile caches graphs per input shape and guards, so every
+    # rollout of the same system and policy reuses them.
+    return torch.compile(_closed_loop_step)
+
+
+def _window(step: StepFn, system: System, policy: nn.Module, x: Tensor, steps: int) -> tuple[Tensor, Tensor, Tensor]:
+    """``steps`` steps from ``x``: states after each step ``(steps, B, state_dim)``, actions, running costs."""
+    states, actions, costs = [], [], []
+    for _ in range(steps):
+        x, u, c = step(system, policy, x)
         states.append(x)
         actions.append(u)
-    return Trajectory(torch.stack(states), torch.stack(actions), torch.stack(costs), system.terminal_cost(x))
+        costs.append(c)
+    return torch.stack(states), torch.stack(actions), torch.stack(costs)
+
+
+def rollout(system: System, policy: nn.Module, x0: Tensor, horizon: int, *, checkpoint_every: int = 0,
+            compile: bool = False) -> Trajectory:
+    """Roll ``policy`` out on ``system`` from ``x0`` ``(B, state_dim)`` for ``horizon`` steps, differentiably.
+
+    Args:
+        checkpoint_every: if > 0 and autograd is recording, keep for the backward pass only the states at the
+            boundaries of windows of this many steps (plus the trajectory itself) and recompute each window's
+            intermediate values during backward: activation memory falls from O(horizon) to
+            O(horizon / k + k) per trajectory for about one extra forward pass. The gradient is unchanged.
+        compile: run the closed-loop step through ``torch.compile`` (the first call compiles: seconds to minutes).
+
+    Raises:
+        ValueError: ``horizon < 1`` or ``checkpoint_every < 0``.
+    """
+    if horizon < 1:
+        raise ValueError(f"horizon must be >= 1 step, got {horizon}")
+    RolloutOptions(checkpoint_every, compile)  # validates
+    step = _compiled_step() if compile else _closed_loop_step
+    if checkpoint_every and checkpoint_every < horizon and torch.is_grad_enabled():
+        parts, x, done = [], x0, 0
+        while done < horizon:
+            k = min(checkpoint_every, horizon - done)
+            part = checkpoint(_window, step, system, policy, x, k, use_reentrant=False)
+            parts.append(part)
+            x, done = part[0][-1], done + k
+        states = torch.cat([x0[None], *(p[0] for p in parts)])  # (T+1, B, state_dim)
+        actions = torch.cat([p[1] for p in parts])
+        costs = torch.cat([p[2] for p in parts])
+    else:
+        after, actions, costs = _window(step, system, policy, x0, horizon)
+        states, x = torch.cat([x0[None], after]), after[-1]  # (T+1, B, state_dim)
+    return Trajectory(states, actions, costs, system.terminal_cost(x))
 
 
 @dataclass(frozen=True)

@@ -8,6 +8,7 @@ fixed held-out set of initial states (drawn from a separate seed). Logging reach
 
 from __future__ import annotations
 
+import dataclasses
 import json
 import logging
 import time
@@ -20,12 +21,15 @@ import torch
 import yaml
 from torch import Tensor
 
-from apg.checkpoint import CHECKPOINT_NAME, atomic_write_text, config_digest, load_checkpoint, save_checkpoint
+from apg import distributed
+from apg.checkpoint import (CHECKPOINT_NAME, CheckpointError, atomic_write_text, config_digest, load_checkpoint,
+                            save_checkpoint)
+from apg.distributed import Shard
 from apg.ensemble import ParameterRanges
 from apg.estimators import GradientEstimator
 from apg.optim import OptimSettings, learning_rate, make_optimiser
 from apg.policies import Policy, PolicySettings, make_policy
-from apg.rollout import Evaluation, evaluate
+from apg.rollout import Evaluation, RolloutOptions, evaluate
 from envs.base import System, check_record
 
 log = logging.getLogger(__name__)
@@ -33,8 +37,8 @@ log = logging.getLogger(__name__)
 DTYPES = {"float32": torch.float32, "float64": torch.float64}
 METRICS_NAME = "metrics.json"
 CONFIG_NAME = "config.yaml"
-# Config keys that may change between a run and its resumption without changing its result.
-RUNTIME_KEYS = ("resume", "progress", "threads")
+# Config keys that may change between a run and its resumption without changing its result (beyond rounding).
+RUNTIME_KEYS = ("resume", "progress", "threads", "train.bptt_window", "train.compile_step")
 
 
 @dataclass(frozen=True)
@@ -55,13 +59,16 @@ class TrainSettings:
     dtype: str = "float32"  # float32 | float64
     max_env_steps: int = 0  # stop once this many simulator steps are spent (0: no limit); for equal-budget races
     max_wall_seconds: float = 0.0  # stop after this much training time (0: no limit)
+    bptt_window: int = 0  # steps per activation-checkpointing window of the training rollout (0: off); saves memory
+    compile_step: bool = False  # torch.compile the closed-loop step of the training rollout (compiles on first use)
 
     def __post_init__(self) -> None:
         if self.dtype not in DTYPES:
             raise ValueError(f"dtype must be one of {', '.join(DTYPES)}; got {self.dtype!r}")
         check_record(self, positive=("iterations", "batch_size", "horizon", "eval_every", "eval_batch",
                                      "checkpoint_every", "figure_trajectories"),
-                     nonnegative=("grad_clip", "eval_horizon", "figure_every", "max_env_steps", "max_wall_seconds"))
+                     nonnegative=("grad_clip", "eval_horizon", "figure_every", "max_env_steps", "max_wall_seconds",
+                                  "bptt_window"))
 
     @property
     def eval_steps(self) -> int:
@@ -139,7 +146,8 @@ def _check_resumable(saved: dict[str, Any], config: dict[str, Any], path: Path) 
 def train(system: System, policy_settings: PolicySettings, optim_settings: OptimSettings,
           estimator: GradientEstimator, settings: TrainSettings, *, seed: int, run_dir: Path,
           resume: bool = False, config: dict[str, Any] | None = None,
-          monitors: Sequence[Monitor] = (), ensemble: ParameterRanges | None = None) -> TrainResult:
+          monitors: Sequence[Monitor] = (), ensemble: ParameterRanges | None = None,
+          shard: Shard | None = None) -> TrainResult:
     """Train a policy for ``system`` and write checkpoints and ``metrics.json`` into ``run_dir``.
 
     Args:
@@ -147,6 +155,9 @@ def train(system: System, policy_settings: PolicySettings, optim_settings: Optim
         resume: continue from ``run_dir/checkpoint.pt``; without it an existing checkpoint is an error.
         ensemble: train over models drawn per minibatch element from these parameter ranges; held-out
             evaluation stays on the nominal ``system``.
+        shard: this process's place in data-parallel training (:mod:`apg.distributed`); every rank calls
+            ``train`` with the same arguments. Only rank 0 reads and writes ``run_dir`` and calls ``monitors``;
+            every rank returns rank 0's metrics.
 
     Raises:
         RunExistsError: ``run_dir`` holds a run and ``resume`` is false, or the saved run's config differs.
@@ -154,25 +165,44 @@ def train(system: System, policy_settings: PolicySettings, optim_settings: Optim
     """
     if ensemble:
         ensemble.check(system)
+    shard = shard or distributed.SINGLE
+    monitors = tuple(monitors) if shard.main else ()
     run_dir = Path(run_dir)
-    run_dir.mkdir(parents=True, exist_ok=True)
     ckpt_path = run_dir / CHECKPOINT_NAME
     config = dict(config or {})
     dtype = DTYPES[settings.dtype]
+    options = RolloutOptions(settings.bptt_window, settings.compile_step)
+    if options != RolloutOptions():
+        estimator = estimator.with_rollout_options(options)
 
-    saved = None
-    if ckpt_path.exists():
-        if not resume:
-            raise RunExistsError(f"{run_dir} already holds a run (checkpoint.pt); pass resume=true to continue it, "
-                                 f"or choose another directory (hydra.run.dir=...). Nothing was changed.")
-        saved = load_checkpoint(ckpt_path)
-        if saved["system"] != system.name:
-            raise RunExistsError(f"cannot resume {run_dir}: it trained {saved['system']!r}, not {system.name!r}")
-        _check_resumable(saved.get("config", {}), config, run_dir)
-    elif resume:
-        log.info("resume=true but %s holds no checkpoint; starting a new run", run_dir)
+    def open_run() -> dict[str, Any] | None:
+        run_dir.mkdir(parents=True, exist_ok=True)
+        saved = None
+        if ckpt_path.exists():
+            if not resume:
+                raise RunExistsError(f"{run_dir} already holds a run (checkpoint.pt); pass resume=true to continue "
+                                     f"it, or choose another directory (hydra.run.dir=...). Nothing was changed.")
+            saved = load_checkpoint(ckpt_path)
+            if saved["system"] != system.name:
+                raise RunExistsError(f"cannot resume {run_dir}: it trained {saved['system']!r}, not {system.name!r}")
+            _check_resumable(saved.get("config", {}), config, run_dir)
+        elif resume:
+            log.info("resume=true but %s holds no checkpoint; starting a new run", run_dir)
+        atomic_write_text(run_dir / CONFIG_NAME, yaml.safe_dump(config, sort_keys=False))
+        return saved
 
-    atomic_write_text(run_dir / CONFIG_NAME, yaml.safe_dump(config, sort_keys=False))
+    if shard.parallel:  # rank 0 opens the run; the others get its checkpoint, or its refusal
+        try:
+            opened: tuple[str, Any] = ("ok", open_run()) if shard.main else ("ok", None)
+        except Exception as e:  # noqa: BLE001 - every rank must raise it, not wait for rank 0 forever
+            opened = ("error", e if isinstance(e, (RunExistsError, CheckpointError, ValueError, OSError))
+                      else RuntimeError(f"rank 0 could not open {run_dir}: {type(e).__name__}: {e}"))
+        opened = distributed.share(opened, shard)
+        if opened[0] == "error":
+            raise opened[1]
+        saved = opened[1]
+    else:
+        saved = open_run()
     torch.manual_seed(seed)
     policy = make_policy(policy_settings, system, torch.Generator().manual_seed(seed + 1), dtype=dtype)
     optimiser = make_optimiser(optim_settings, policy.parameters())
@@ -190,6 +220,7 @@ def train(system: System, policy_settings: PolicySettings, optim_settings: Optim
         start, env_steps, wall_before = saved["iteration"], saved["env_steps"], saved["wall_time_s"]
         last_eval = saved.get("last_eval")
         log.info("resuming %s at iteration %d", run_dir, start)
+    distributed.sync_module(policy, shard)
 
     run = RunInfo(system, policy, settings, run_dir, start, config)
     for m in monitors:
@@ -201,6 +232,8 @@ def train(system: System, policy_settings: PolicySettings, optim_settings: Optim
         return wall_before + time.perf_counter() - t_start
 
     def checkpoint(iteration: int) -> None:
+        if not shard.main:
+            return
         save_checkpoint(ckpt_path, {
             "iteration": iteration, "policy": policy.state_dict(), "policy_settings": asdict(policy_settings),
             "optimiser": optimiser.state_dict(), "generator": train_gen.get_state(),
@@ -211,6 +244,8 @@ def train(system: System, policy_settings: PolicySettings, optim_settings: Optim
 
     def run_eval(iteration: int) -> None:
         nonlocal last_eval
+        if not shard.main:
+            return
         result = evaluate(system, policy, x_eval, settings.eval_steps)
         last_eval = {"iteration": iteration, "eval_cost": result.mean_cost, "success_rate": result.success_rate,
                      "env_steps": env_steps, "wall_time_s": elapsed()}
@@ -218,22 +253,31 @@ def train(system: System, policy_settings: PolicySettings, optim_settings: Optim
             m.evaluation(iteration, result)
 
     def budget_spent() -> bool:
-        return bool((settings.max_env_steps and env_steps >= settings.max_env_steps)
-                    or (settings.max_wall_seconds and elapsed() >= settings.max_wall_seconds))
+        spent = bool((settings.max_env_steps and env_steps >= settings.max_env_steps)
+                     or (settings.max_wall_seconds and elapsed() >= settings.max_wall_seconds))
+        # Clocks differ between ranks: they must agree to stop together (env_steps is the same everywhere).
+        return distributed.any_rank(spent, shard) if settings.max_wall_seconds else spent
 
     params = list(policy.parameters())
     it = start
     try:
         if start == 0:
             run_eval(0)
-        while it < settings.iterations and not budget_spent():
+        stop = budget_spent()
+        while it < settings.iterations and not stop:
             t0 = time.perf_counter()
             lr = learning_rate(optim_settings, it, settings.iterations)
             for group in optimiser.param_groups:
                 group["lr"] = lr
+            # Every rank draws the whole minibatch and keeps its share (apg.distributed).
             x0 = system.sample_initial(settings.batch_size, train_gen, dtype)
             models = ensemble.sample(system, settings.batch_size, train_gen, dtype) if ensemble else system
+            x0, models = shard.take(x0), shard.take_models(models, settings.batch_size)
             est = estimator.estimate(models, policy, x0, settings.horizon, estimator_gen)
+            if shard.parallel:
+                grads, loss, sim_steps = distributed.reduce_gradient(est.grads, est.loss, est.sim_steps, x0.shape[0],
+                                                                     settings.batch_size, shard)
+                est = dataclasses.replace(est, grads=grads, loss=loss, sim_steps=sim_steps)
             grad_norm = torch.linalg.vector_norm(torch.stack([torch.linalg.vector_norm(g) for g in est.grads]))
             if not (torch.isfinite(est.loss) and torch.isfinite(grad_norm)):
                 where = ""
@@ -253,7 +297,7 @@ def train(system: System, policy_settings: PolicySettings, optim_settings: Optim
                 torch.nn.utils.clip_grad_norm_(params, settings.grad_clip)
             optimiser.step()
             if policy.settings.normalise == "running" and est.trajectory is not None:
-                policy.normaliser.update(system.observe(est.trajectory.states))
+                policy.normaliser.update(system.observe(distributed.gather_batch(est.trajectory.states, 1, shard)))
             env_steps += est.sim_steps
             it += 1
             dt_iter = time.perf_counter() - t0
@@ -262,7 +306,8 @@ def train(system: System, policy_settings: PolicySettings, optim_settings: Optim
                      "env_steps": float(env_steps), "wall_time_s": elapsed()}
             for m in monitors:
                 m.iteration(it, stats)
-            last = it == settings.iterations or budget_spent()
+            stop = budget_spent()
+            last = it == settings.iterations or stop
             if it % settings.eval_every == 0 or last:
                 run_eval(it)
             if it % settings.checkpoint_every == 0 or last:
@@ -270,7 +315,9 @@ def train(system: System, policy_settings: PolicySettings, optim_settings: Optim
     except KeyboardInterrupt:
         # The policy is consistent after every completed iteration: save it so nothing is lost.
         checkpoint(it)
-        log.warning("interrupted at iteration %d; checkpoint saved to %s (continue with resume=true)", it, ckpt_path)
+        if shard.main:
+            log.warning("interrupted at iteration %d; checkpoint saved to %s (continue with resume=true)", it,
+                        ckpt_path)
         for m in monitors:
             m.close()
         raise
@@ -279,16 +326,21 @@ def train(system: System, policy_settings: PolicySettings, optim_settings: Optim
             m.close()
         raise
 
-    if last_eval is None or last_eval["iteration"] != it:
-        run_eval(it)
-    assert last_eval is not None
-    metrics = {
-        "system": system.name, "eval_cost": last_eval["eval_cost"], "success_rate": last_eval["success_rate"],
-        "env_steps": env_steps, "wall_time_s": round(elapsed(), 3), "iterations": it, "seed": seed,
-        "success_criterion": system.success_criterion, "eval_batch": settings.eval_batch,
-        "eval_seed": settings.eval_seed, "config_digest": config_digest(config),
-    }
-    atomic_write_text(run_dir / METRICS_NAME, json.dumps(metrics, indent=2) + "\n")
+    metrics: dict[str, Any] | None = None
+    if shard.main:
+        if last_eval is None or last_eval["iteration"] != it:
+            run_eval(it)
+        assert last_eval is not None
+        metrics = {
+            "system": system.name, "eval_cost": last_eval["eval_cost"], "success_rate": last_eval["success_rate"],
+            "env_steps": env_steps, "wall_time_s": round(elapsed(), 3), "iterations": it, "seed": seed,
+            "success_criterion": system.success_criterion, "eval_batch": settings.eval_batch,
+            "eval_seed": settings.eval_seed, "config_digest": config_digest(config),
+        }
+        if shard.parallel:
+            metrics["processes"] = shard.world_size
+        atomic_write_text(run_dir / METRICS_NAME, json.dumps(metrics, indent=2) + "\n")
+    metrics = distributed.share(metrics, shard)
     for m in monitors:
         m.end(metrics)
         m.close()

@@ -1,4 +1,8 @@
-"""``apg-train``: compose the config, build the records, train, and report where the results are."""
+"""``apg-train``: compose the config, build the records, train, and report where the results are.
+
+Launched by ``torchrun`` (``torchrun --nproc-per-node N -m apg.cli.train ...``) it trains data-parallel over the
+N processes (:mod:`apg.distributed`); rank 0 writes the run directory.
+"""
 
 from __future__ import annotations
 
@@ -12,6 +16,7 @@ from hydra.core.hydra_config import HydraConfig
 from omegaconf import DictConfig
 
 from apg import config as app_config  # registers the schemas
+from apg import distributed
 from apg.checkpoint import CheckpointError
 from apg.estimators import make_estimator
 from apg.monitor import ProgressMonitor, TensorBoardMonitor
@@ -26,10 +31,22 @@ def run(cfg: DictConfig) -> dict:
     spec = app_config.build(cfg)
     torch.set_num_threads(spec.threads)
     run_dir = Path(HydraConfig.get().runtime.output_dir)
-    result = train(spec.system, spec.policy, spec.optim, make_estimator(spec.estimator), spec.train,
-                   seed=spec.seed, run_dir=run_dir, resume=spec.resume, config=spec.config,
-                   monitors=[TensorBoardMonitor(), ProgressMonitor(spec.progress)], ensemble=spec.ensemble)
+    shard = distributed.from_environment()
+    if shard.parallel and shard.main:
+        log.info("data-parallel training: the minibatch of %d initial states is split over %d processes",
+                 spec.train.batch_size, shard.world_size)
+    try:
+        result = train(spec.system, spec.policy, spec.optim, make_estimator(spec.estimator), spec.train,
+                       seed=spec.seed, run_dir=run_dir, resume=spec.resume, config=spec.config,
+                       monitors=[TensorBoardMonitor(), ProgressMonitor(spec.progress)], ensemble=spec.ensemble,
+                       shard=shard)
+    except BaseException:
+        distributed.shutdown(shard, wait=False)
+        raise
+    distributed.shutdown(shard)
     m = result.metrics
+    if not shard.main:
+        return m
     log.info("%s: held-out cost %.4g, success %.1f%% (%s) after %d iterations, %.1f s; run directory %s",
              m["system"], m["eval_cost"], 100 * m["success_rate"], m["success_criterion"], m["iterations"],
              m["wall_time_s"], run_dir)
@@ -48,4 +65,8 @@ def main(cfg: DictConfig) -> None:
 
 
 if __name__ == "__main__":
-    main()
+    # Run the imported module's main, not this __main__ copy: launchers that pickle the task function
+    # (submitit, joblib) can then pickle it by reference instead of dragging __main__'s globals along.
+    from apg.cli.train import main as imported_main
+
+    imported_main()
