@@ -3,36 +3,88 @@
 Every estimator answers the same question: given a policy, a minibatch of initial states and a seeded
 generator, what is (an estimate of) ``dJ/dtheta``, and how many simulator steps did that cost? The trainer
 takes any of them, so adding one is adding a class here and a YAML file in ``configs/estimator``.
+
+Which objective each one estimates (its reference gradient, :meth:`GradientEstimator.reference_gradient`):
+
+* ``analytic``: the exact minibatch objective, by backpropagation through time.
+* ``es``: the parameter-smoothed objective ``J_sigma(theta) = E_eps[J(theta + sigma eps)]``, eps ~ N(0, I),
+  by Gaussian smoothing with antithetic pairs (Salimans, Ho, Chen, Sidor, Sutskever 2017, "Evolution strategies
+  as a scalable alternative to reinforcement learning"; the smoothing identity is Nesterov & Spokoiny 2017).
+  With ``rank_shaping`` the costs are replaced by centred ranks, as Salimans et al. do: the update is then
+  invariant to any increasing transformation of the cost but no longer an unbiased gradient of anything.
+* ``likelihood_ratio``: the action-smoothed objective, the expected cost when Gaussian noise is added to every
+  action, by the score-function estimator (Williams 1992, REINFORCE) with cost-to-go and a leave-one-out
+  baseline over the noisy rollouts of the same initial state (both keep it unbiased).
+* ``alpha_order``: the same action-smoothed objective, as ``alpha * first-order + (1 - alpha) * zeroth-order``
+  on one shared set of noisy rollouts (Suh, Simchowitz, Zhang, Tedrake 2022, "Do differentiable simulators give
+  better policy gradients?"): the first-order term is the pathwise (reparameterised) gradient through the
+  noisy rollouts, the zeroth-order term the likelihood-ratio estimate above. ``alpha`` is fixed here.
+
+Noisy actions are clipped to the system's action limits before they reach the simulator; the clip counts as
+part of the system, so the score uses the unclipped Gaussian draw (common practice in policy-gradient codes).
 """
 
 from __future__ import annotations
 
 import abc
+import copy
+import dataclasses
+import math
+import warnings
 from dataclasses import dataclass
-from typing import ClassVar
+from typing import Callable, ClassVar
 
 import torch
 from torch import Tensor, nn
+from torch.func import functional_call, vmap
 
-from apg.rollout import Trajectory, rollout
-from envs.base import System
+from apg.rollout import RolloutOptions, Trajectory, rollout
+from envs.base import System, check_record
+
+BASELINES = ("leave_one_out", "none")
 
 
 @dataclass(frozen=True)
 class EstimatorSettings:
-    """Which estimator to use; ``configs/estimator/*.yaml`` fill this record."""
+    """Which estimator to use and its settings; ``configs/estimator/*.yaml`` fill this record."""
 
-    name: str = "analytic"
+    name: str = "analytic"  # analytic | es | likelihood_ratio | alpha_order
+    pairs: int = 16  # es: antithetic perturbation pairs per estimate (2 x pairs rollouts of every initial state)
+    sigma: float = 0.02  # es: standard deviation of the parameter perturbation (parameter units)
+    rank_shaping: bool = False  # es: centred-rank fitness shaping (Salimans et al. 2017); biased, scale-free
+    samples: int = 4  # likelihood_ratio, alpha_order: noisy rollouts per initial state
+    action_noise: float = 0.1  # likelihood_ratio, alpha_order: noise std as a fraction of each action's half-range
+    baseline: str = "leave_one_out"  # likelihood_ratio, alpha_order: leave_one_out | none
+    alpha: float = 0.5  # alpha_order: weight of the first-order term (1: pathwise only, 0: likelihood ratio only)
+
+    def __post_init__(self) -> None:
+        if self.name not in ESTIMATORS:
+            raise ValueError(f"name must be one of {', '.join(sorted(ESTIMATORS))}; got {self.name!r}")
+        if self.baseline not in BASELINES:
+            raise ValueError(f"baseline must be one of {', '.join(BASELINES)}; got {self.baseline!r}")
+        check_record(self, positive=("pairs", "sigma", "samples", "action_noise"))
+        if not 0.0 <= self.alpha <= 1.0:
+            raise ValueError(f"alpha must be in [0, 1], got {self.alpha}")
+        if self.baseline == "leave_one_out" and self.samples < 2 and "baseline" in ESTIMATORS[self.name].uses:
+            raise ValueError(f"baseline=leave_one_out needs samples >= 2 (got {self.samples}); raise samples or "
+                             f"set baseline=none")
+
+    def ignored(self) -> list[str]:
+        """Options set away from their defaults that the chosen estimator does not use."""
+        used = ESTIMATORS[self.name].uses
+        default = EstimatorSettings()
+        return [f.name for f in dataclasses.fields(self)
+                if f.name != "name" and f.name not in used and getattr(self, f.name) != getattr(default, f.name)]
 
 
 @dataclass(frozen=True)
 class Estimate:
     """One gradient estimate: ``grads`` align with ``[p for p in policy.parameters()]``."""
 
-    loss: Tensor  # scalar, the minibatch objective (detached)
+    loss: Tensor  # scalar, the minibatch objective (detached); for smoothed estimators, of the smoothed one
     grads: tuple[Tensor, ...]
     sim_steps: int  # simulator steps spent on this estimate (batch x horizon x evaluations)
-    trajectory: Trajectory | None = None  # the nominal rollout, detached, when the estimator made one
+    trajectory: Trajectory | None = None  # the rollouts it made, detached (all of them, batched along dim 1)
 
 
 class GradientEstimator(abc.ABC):
@@ -40,37 +92,268 @@ class GradientEstimator(abc.ABC):
 
     ``x0`` is ``(B, state_dim)``; the objective is the batch mean of ``Trajectory.total_cost``. The estimator
     must not change the policy's parameters, and must draw any randomness from ``generator`` only.
+    ``reference_gradient`` returns the gradient of the objective the estimator is unbiased for, computed by a
+    low-variance route (for studies); ``steps_per_estimate`` says what one estimate costs in simulator steps.
     """
 
     name: ClassVar[str]
+    title: ClassVar[str] = ""  # a few words for tables and reports
+    objective: ClassVar[str] = "exact minibatch objective"  # what reference_gradient differentiates
+    uses: ClassVar[tuple[str, ...]] = ()  # the EstimatorSettings fields it reads (others warn when set)
+    sample_field: ClassVar[str | None] = None  # the field that sets its number of samples per estimate
+    rollout_options: RolloutOptions = RolloutOptions()  # how differentiable rollouts run (memory, compilation)
+
+    def with_rollout_options(self, options: RolloutOptions) -> "GradientEstimator":
+        """A copy of this estimator whose differentiable rollouts run with ``options``."""
+        new = copy.copy(self)
+        new.rollout_options = options
+        return new
 
     @abc.abstractmethod
     def estimate(self, system: System, policy: nn.Module, x0: Tensor, horizon: int,
                  generator: torch.Generator) -> Estimate:
         ...
 
+    def steps_per_estimate(self, batch: int, horizon: int) -> int:
+        """Simulator steps one ``estimate`` spends on ``batch`` initial states."""
+        return batch * horizon
+
+    def reference_gradient(self, system: System, policy: nn.Module, x0: Tensor, horizon: int,
+                           generator: torch.Generator, samples: int) -> tuple[Tensor, ...] | None:
+        """The gradient of :attr:`objective` at the policy's parameters (``samples`` sets its precision where
+        it is itself an average); ``None`` where the estimator is not unbiased for any objective."""
+        return _bptt(rollout(system, policy, x0, horizon).total_cost.mean(), policy)
+
+
+def _bptt(loss: Tensor, policy: nn.Module) -> tuple[Tensor, ...]:
+    params = list(policy.parameters())
+    grads = torch.autograd.grad(loss, params, allow_unused=True)
+    return tuple(torch.zeros_like(p) if g is None else g for g, p in zip(grads, params))
+
 
 class Analytic(GradientEstimator):
     """The exact gradient of the minibatch objective by backpropagation through time."""
 
     name = "analytic"
+    title = "BPTT (exact gradient)"
+
+    def __init__(self, settings: EstimatorSettings | None = None) -> None:
+        self.settings = settings or EstimatorSettings()
 
     def estimate(self, system: System, policy: nn.Module, x0: Tensor, horizon: int,
                  generator: torch.Generator) -> Estimate:
-        traj = rollout(system, policy, x0, horizon)
+        traj = rollout(system, policy, x0, horizon, **self.rollout_options.as_kwargs())
         loss = traj.total_cost.mean()
-        grads = torch.autograd.grad(loss, list(policy.parameters()), allow_unused=True)
-        grads = tuple(torch.zeros_like(p) if g is None else g for g, p in zip(grads, policy.parameters()))
-        return Estimate(loss.detach(), grads, x0.shape[0] * horizon, traj.detach())
+        return Estimate(loss.detach(), _bptt(loss, policy), x0.shape[0] * horizon, traj.detach())
 
 
-ESTIMATORS: dict[str, type[GradientEstimator]] = {cls.name: cls for cls in (Analytic,)}
+# ---- batched rollouts of many parameter vectors or many noise draws --------------------------------------------
+def _tile_system(system: System, k: int) -> System:
+    """A copy whose per-batch tensor parameters are repeated ``k`` times, to match ``x0.repeat(k, 1)``."""
+    def tiled(record: object) -> object:
+        changes = {f.name: getattr(record, f.name).repeat(k) for f in dataclasses.fields(record)
+                   if isinstance(getattr(record, f.name), Tensor) and getattr(record, f.name).dim() == 1}
+        return dataclasses.replace(record, **changes) if changes else record
+
+    if k == 1:
+        return system
+    params, task = tiled(system.params), tiled(system.task)
+    return system if params is system.params and task is system.task else system.replace(params=params, task=task)
+
+
+def _population(policy: nn.Module, flat: Tensor, batch: int) -> Callable[[Tensor], Tensor]:
+    """Act with ``K`` parameter vectors at once: ``flat`` is ``(K, P)``, observations ``(K * batch, obs_dim)``
+    in blocks of ``batch`` rows per parameter vector; buffers (the normaliser) are shared."""
+    names = [n for n, _ in policy.named_parameters()]
+    shapes = [p.shape for _, p in policy.named_parameters()]
+    chunks = flat.split([math.prod(s) for s in shapes], dim=1)
+    params = {n: c.reshape(flat.shape[0], *s) for n, c, s in zip(names, chunks, shapes)}  # (K, *shape)
+    call = vmap(lambda p, o: functional_call(policy, p, (o,)))
+
+    def act(obs: Tensor) -> Tensor:
+        u = call(params, obs.reshape(flat.shape[0], batch, -1))  # (K, batch, action_dim)
+        return u.reshape(flat.shape[0] * batch, -1)
+
+    return act
+
+
+def _noisy_rollout(system: System, act: Callable[[Tensor], Tensor], x0: Tensor, horizon: int,
+                   noise: Tensor | None = None) -> tuple[Trajectory, Tensor]:
+    """Roll out ``act`` from ``x0`` ``(K, n)``; with ``noise`` ``(T, K, action_dim)`` (already scaled) it is
+    added to every action and the sum clipped to the limits. Returns the trajectory (executed actions) and the
+    noise-free actions ``(T, K, action_dim)``."""
+    lo = torch.tensor(system.action_low, dtype=x0.dtype)
+    hi = torch.tensor(system.action_high, dtype=x0.dtype)
+    x, states, actions, means, costs = x0, [x0], [], [], []
+    for t in range(horizon):
+        mu = act(system.observe(x))
+        u = mu if noise is None else torch.clamp(mu + noise[t], lo, hi)
+        costs.append(system.running_cost(x, u))
+        x = system.step(x, u)
+        states.append(x)
+        actions.append(u)
+        means.append(mu)
+    traj = Trajectory(torch.stack(states), torch.stack(actions), torch.stack(costs), system.terminal_cost(x))
+    return traj, torch.stack(means)
+
+
+def _flat_parameters(policy: nn.Module) -> Tensor:
+    return torch.cat([p.reshape(-1) for p in policy.parameters()])
+
+
+def _unflatten_like(flat: Tensor, policy: nn.Module) -> tuple[Tensor, ...]:
+    return tuple(c.reshape(p.shape) for c, p in zip(flat.split([p.numel() for p in policy.parameters()]),
+                                                     policy.parameters()))
+
+
+def centred_ranks(values: Tensor) -> Tensor:
+    """Ranks of ``values`` mapped linearly onto [-0.5, 0.5] (smallest -0.5), as in Salimans et al. (2017)."""
+    ranks = torch.empty_like(values)
+    ranks[values.argsort()] = torch.arange(values.numel(), dtype=values.dtype)
+    return ranks / max(values.numel() - 1, 1) - 0.5
+
+
+class EvolutionStrategies(GradientEstimator):
+    """Zeroth-order Gaussian smoothing in parameter space with antithetic pairs.
+
+    ``g = sum_i (J(theta + sigma eps_i) - J(theta - sigma eps_i)) eps_i / (2 n sigma)`` over ``n = pairs``
+    directions, each evaluated on the whole minibatch (common random numbers across the pair); unbiased for the
+    gradient of ``J_sigma`` (module docstring). Costs ``2 * pairs * B * horizon`` simulator steps.
+    """
+
+    name = "es"
+    title = "evolution strategies"
+    objective = "parameter-smoothed objective E[J(theta + sigma eps)]"
+    uses = ("pairs", "sigma", "rank_shaping")
+    sample_field = "pairs"
+
+    def __init__(self, settings: EstimatorSettings | None = None) -> None:
+        self.settings = settings or EstimatorSettings(name="es")
+        if self.settings.rank_shaping:
+            self.objective = "none (rank-shaped update, not an unbiased gradient)"
+
+    def steps_per_estimate(self, batch: int, horizon: int) -> int:
+        return 2 * self.settings.pairs * batch * horizon
+
+    def estimate(self, system: System, policy: nn.Module, x0: Tensor, horizon: int,
+                 generator: torch.Generator) -> Estimate:
+        s, (b, _) = self.settings, x0.shape
+        with torch.no_grad():
+            theta = _flat_parameters(policy)
+            eps = torch.randn(s.pairs, theta.numel(), generator=generator, dtype=theta.dtype)  # (n, P)
+            thetas = torch.cat([theta + s.sigma * eps, theta - s.sigma * eps])  # (2n, P): all +, then all -
+            k = thetas.shape[0]
+            traj, _ = _noisy_rollout(_tile_system(system, k), _population(policy, thetas, b), x0.repeat(k, 1),
+                                     horizon)
+            cost = traj.total_cost.reshape(k, b).mean(1)  # (2n,) minibatch objective per parameter vector
+            fitness = centred_ranks(cost) if s.rank_shaping else cost
+            g = ((fitness[: s.pairs] - fitness[s.pairs:]) @ eps) / (2 * s.pairs * s.sigma)  # (P,)
+        return Estimate(cost.mean(), _unflatten_like(g, policy), k * b * horizon, traj)
+
+    def reference_gradient(self, system: System, policy: nn.Module, x0: Tensor, horizon: int,
+                           generator: torch.Generator, samples: int) -> tuple[Tensor, ...] | None:
+        """``grad J_sigma = E[grad J(theta + sigma eps)]``: the mean of ``2 * samples`` exact BPTT gradients at
+        antithetic perturbed parameters (first order, so far less noisy than the estimator itself)."""
+        if self.settings.rank_shaping:
+            return None
+        theta = _flat_parameters(policy)
+        b = x0.shape[0]
+        eps = torch.randn(samples, theta.numel(), generator=generator, dtype=theta.dtype)
+        thetas = torch.cat([theta + self.settings.sigma * eps, theta - self.settings.sigma * eps])
+        k = thetas.shape[0]
+        traj, _ = _noisy_rollout(_tile_system(system, k), _population(policy, thetas, b), x0.repeat(k, 1), horizon)
+        return _bptt(traj.total_cost.mean(), policy)
+
+
+class _ActionNoise(GradientEstimator):
+    """Shared machinery of the estimators of the action-smoothed objective (module docstring)."""
+
+    objective = "action-smoothed objective E[J | Gaussian action noise]"
+    uses = ("samples", "action_noise", "baseline")
+    sample_field = "samples"
+    alpha: float  # weight of the pathwise term
+
+    def __init__(self, settings: EstimatorSettings | None = None) -> None:
+        self.settings = settings or EstimatorSettings(name=self.name)
+
+    def steps_per_estimate(self, batch: int, horizon: int) -> int:
+        return self.settings.samples * batch * horizon
+
+    def _scale(self, system: System, dtype: torch.dtype) -> Tensor:
+        lo = torch.tensor(system.action_low, dtype=dtype)
+        hi = torch.tensor(system.action_high, dtype=dtype)
+        return self.settings.action_noise * (hi - lo) / 2  # (action_dim,) noise std in action units
+
+    def _blend(self, system: System, policy: nn.Module, x0: Tensor, horizon: int, generator: torch.Generator,
+               alpha: float, samples: int) -> Estimate:
+        n, b = samples, x0.shape[0]
+        k = n * b  # rollouts, index i * b + j: noise draw i of initial state j
+        sigma = self._scale(system, x0.dtype)
+        xi = torch.randn(horizon, k, system.action_dim, generator=generator, dtype=x0.dtype)  # standard normal
+        with torch.set_grad_enabled(alpha > 0):
+            traj, mu = _noisy_rollout(_tile_system(system, n), policy, x0.repeat(n, 1), horizon, xi * sigma)
+        loss = traj.total_cost.mean()
+        total = alpha * loss if alpha > 0 else torch.zeros((), dtype=x0.dtype)
+        if alpha < 1:
+            # Score-function term: grad log N(u; mu, sigma^2) = (xi / sigma) dmu/dtheta, weighted by the
+            # cost-to-go from the same step (earlier costs do not depend on this action) minus a baseline.
+            to_go = traj.costs.detach().flip(0).cumsum(0).flip(0) + traj.terminal.detach()  # (T, K)
+            if self.settings.baseline == "leave_one_out":
+                per_state = to_go.reshape(horizon, n, b)
+                others = (per_state.sum(1, keepdim=True) - per_state) / (n - 1)  # mean of the other draws
+                to_go = (per_state - others).reshape(horizon, k)
+            states = traj.states[:-1].detach()  # (T, K, n): the score needs d mu / d theta at fixed states
+            mu_re = policy(system.observe(states).reshape(horizon * k, -1)).reshape(horizon, k, -1)
+            surrogate = (to_go.unsqueeze(-1) * (xi / sigma) * mu_re).sum((0, 2)).mean()
+            total = total + (1 - alpha) * surrogate
+        grads = _bptt(total, policy)
+        return Estimate(loss.detach(), grads, k * horizon, traj.detach())
+
+    def estimate(self, system: System, policy: nn.Module, x0: Tensor, horizon: int,
+                 generator: torch.Generator) -> Estimate:
+        return self._blend(system, policy, x0, horizon, generator, self.alpha, self.settings.samples)
+
+    def reference_gradient(self, system: System, policy: nn.Module, x0: Tensor, horizon: int,
+                           generator: torch.Generator, samples: int) -> tuple[Tensor, ...] | None:
+        """The pathwise gradient averaged over ``samples`` noise draws per initial state: unbiased for the
+        action-smoothed objective (reparameterisation; the clip is Lipschitz) and far less noisy than the score."""
+        return self._blend(system, policy, x0, horizon, generator, 1.0, samples).grads
+
+
+class LikelihoodRatio(_ActionNoise):
+    """Score-function (REINFORCE) estimate with Gaussian action noise; no derivative of the simulator is used.
+
+    Costs ``samples * B * horizon`` simulator steps; with ``baseline=leave_one_out`` each rollout's cost-to-go
+    is compared with the mean of the other ``samples - 1`` rollouts from the same initial state.
+    """
+
+    name = "likelihood_ratio"
+    title = "likelihood ratio"
+    alpha = 0.0
+
+
+class AlphaOrder(_ActionNoise):
+    """``alpha * pathwise + (1 - alpha) * likelihood ratio`` on one set of noisy rollouts (Suh et al. 2022)."""
+
+    name = "alpha_order"
+    title = "alpha-order"
+    uses = (*_ActionNoise.uses, "alpha")
+
+    @property
+    def alpha(self) -> float:  # type: ignore[override]
+        return self.settings.alpha
+
+
+ESTIMATORS: dict[str, type[GradientEstimator]] = {
+    cls.name: cls for cls in (Analytic, EvolutionStrategies, LikelihoodRatio, AlphaOrder)}
 
 
 def make_estimator(settings: EstimatorSettings) -> GradientEstimator:
-    """The estimator named in ``settings``; an unknown name lists the valid ones."""
+    """The estimator named in ``settings``; an unknown name lists the valid ones. Warns about ignored options."""
     try:
         cls = ESTIMATORS[settings.name]
     except KeyError:
         raise ValueError(f"unknown estimator {settings.name!r}; choose one of {', '.join(sorted(ESTIMATORS))}") from None
-    return cls()
+    for key in settings.ignored():
+        warnings.warn(f"estimator.{key} is ignored by estimator.name={settings.name}", stacklevel=2)
+    return cls(settings)  # type: ignore[call-arg]
