@@ -335,7 +335,7 @@ def train(system: System, policy_settings: PolicySettings, optim_settings: Optim
             "system": system.name, "eval_cost": last_eval["eval_cost"], "success_rate": last_eval["success_rate"],
             "env_steps": env_steps, "wall_time_s": round(elapsed(), 3), "iterations": it, "seed": seed,
             "success_criterion": system.success_criterion, "eval_batch": settings.eval_batch,
-            "eval_seed": settings.eval_seed, "config_digest": config_digest(config),
+            "eval_seed": settings.eval_seed, "config_digest": config_digest(config), "experiment": config.get("experiment"),
         }
         if shard.parallel:
             metrics["processes"] = shard.world_size
