@@ -1,7 +1,7 @@
 """Proximal policy optimisation: the model-free baseline a practitioner would otherwise pick.
 
 PPO with the clipped surrogate objective (Schulman, Wolski, Dhariwal, Radford, Klimov 2017) and generalised
-advantage estimation (Schulman, Moritz, Levine, Jordan, Abbeel 2016). It never differentiates the simulator.
+advantage estimation (Schulman et al., ICLR 2016). It never differentiates the simulator.
 The actor is the project's own :class:`~apg.policies.Policy` (the same class, size and initial weights as the
 other entrants) used as the mean of a Gaussian with a learned, state-independent standard deviation; the
 critic is a separate MLP that also sees the fraction of the horizon left, because every task here has a fixed
