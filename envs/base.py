@@ -213,9 +213,12 @@ class System(abc.ABC):
     def terminal_cost(self, x: Tensor) -> Tensor:
         """Cost of the final state, shape ``(B,)``."""
 
-    @abc.abstractmethod
     def sample_initial(self, n: int, generator: torch.Generator, dtype: torch.dtype = torch.float32) -> Tensor:
-        """``n`` initial states from the task's distribution, shape ``(n, state_dim)``."""
+        """``n`` initial states from the task's distribution, shape ``(n, state_dim)``.
+
+        By default uniform over the box ``task.init_low`` .. ``task.init_high``; override for other distributions.
+        """
+        return box_sample(self.task.init_low, self.task.init_high, n, generator, dtype)
 
     @abc.abstractmethod
     def success(self, states: Tensor, actions: Tensor) -> Tensor:

@@ -18,7 +18,7 @@ from dataclasses import dataclass
 import torch
 from torch import Tensor
 
-from envs.base import Quantity, System, box_sample, check_record, unit
+from envs.base import Quantity, System, check_record, unit
 
 
 @dataclass(frozen=True)
@@ -93,9 +93,6 @@ class Crane(System):
 
     def terminal_cost(self, x: Tensor) -> Tensor:
         return self._shape(x)
-
-    def sample_initial(self, n: int, generator: torch.Generator, dtype: torch.dtype = torch.float32) -> Tensor:
-        return box_sample(self.task.init_low, self.task.init_high, n, generator, dtype)
 
     def success(self, states: Tensor, actions: Tensor) -> Tensor:
         t = self.task

@@ -18,7 +18,7 @@ import scipy.linalg
 import torch
 from torch import Tensor
 
-from envs.base import Quantity, System, box_sample, check_record, unit
+from envs.base import Quantity, System, check_record, unit
 
 
 @dataclass(frozen=True)
@@ -87,9 +87,6 @@ class DoubleIntegrator(System):
     def terminal_cost(self, x: Tensor) -> Tensor:
         p = torch.as_tensor(self.riccati, dtype=x.dtype)
         return torch.einsum("bi,ij,bj->b", x, p, x)
-
-    def sample_initial(self, n: int, generator: torch.Generator, dtype: torch.dtype = torch.float32) -> Tensor:
-        return box_sample(self.task.init_low, self.task.init_high, n, generator, dtype)
 
     def success(self, states: Tensor, actions: Tensor) -> Tensor:
         return (states[-1].abs() < self.task.tolerance).all(dim=-1)

@@ -13,7 +13,7 @@ from dataclasses import dataclass
 import torch
 from torch import Tensor
 
-from envs.base import Quantity, System, box_sample, check_record, unit, wrap_angle
+from envs.base import Quantity, System, check_record, unit, wrap_angle
 
 
 @dataclass(frozen=True)
@@ -76,9 +76,6 @@ class Pendulum(System):
     def terminal_cost(self, x: Tensor) -> Tensor:
         t = self.task
         return t.w_angle * (1 - torch.cos(x[..., 0])) + t.w_velocity * x[..., 1] ** 2
-
-    def sample_initial(self, n: int, generator: torch.Generator, dtype: torch.dtype = torch.float32) -> Tensor:
-        return box_sample(self.task.init_low, self.task.init_high, n, generator, dtype)
 
     def success(self, states: Tensor, actions: Tensor) -> Tensor:
         w = self.final_window(states, self.task.hold_time)
