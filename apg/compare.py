@@ -124,16 +124,24 @@ class Entrant:
 
     @property
     def steps_per_iteration(self) -> int:
+        """Simulator steps per iteration, averaged over a horizon schedule (``train.horizon_start``) if any."""
         if self.method == "ppo":
             return self.train.batch_size * self.train.horizon
         estimator = ESTIMATORS[self.estimator.name](self.estimator)  # type: ignore[call-arg]
-        return estimator.steps_per_estimate(self.train.batch_size, self.train.horizon)
+        full = estimator.steps_per_estimate(self.train.batch_size, self.train.horizon)
+        return max(1, round(full * self.train.mean_horizon / self.train.horizon))
 
     @property
     def description(self) -> str:
         if self.method == "ppo":
             return "PPO + GAE (model-free)"
-        return ESTIMATORS[self.estimator.name].title or self.estimator.name
+        title = ESTIMATORS[self.estimator.name](self.estimator).title or self.estimator.name  # type: ignore[call-arg]
+        extras = []
+        if self.train.horizon_start:
+            extras.append(f"horizon {self.train.horizon_start} to {self.train.horizon} steps")
+        if self.train.continuation_param:
+            extras.append(f"{self.train.continuation_param} from {self.train.continuation_start:g}")
+        return f"{title} ({'; '.join(extras)})" if extras else title
 
 
 # ---- gradient study ----------------------------------------------------------------------------------------------
@@ -310,7 +318,7 @@ class RaceResult:
 
 def _race_settings(entrant: Entrant, budget: str, settings: RaceSettings, iterations: int) -> TrainSettings:
     return dataclasses.replace(entrant.train, iterations=iterations, eval_every=iterations, checkpoint_every=iterations,
-                               figure_every=0,
+                               figure_every=0, diagnose_every=0,
                                max_env_steps=settings.budget_steps if budget == "steps" else 0,
                                max_wall_seconds=settings.budget_seconds if budget == "seconds" else 0.0)
 
@@ -398,27 +406,31 @@ def choose_target(runs: Sequence[Mapping[str, Any]], settings: RaceSettings) -> 
         return float(settings.target_cost), f"given: race.target_cost = {settings.target_cost:.4g}"
     steps = [r for r in runs if r["budget"] == "steps"]
     initial = statistics.median(r["initial_cost"] for r in steps)
-    ref = [r["final_cost"] for r in steps if r["entrant"] == settings.reference and math.isfinite(r["final_cost"])]
-    who = settings.reference
-    if not ref:  # no reference entrant (or it diverged everywhere): use the best entrant's median final cost
-        finals: dict[str, list[float]] = {}
-        for r in steps:
-            if math.isfinite(r["final_cost"]):
-                finals.setdefault(r["entrant"], []).append(r["final_cost"])
-        if not finals:
-            return None, "no target: every run diverged"
-        who = min(finals, key=lambda k: statistics.median(finals[k]))
-        ref = finals[who]
-    final = max(ref)  # the worst seed: every seed of the reference reaches the target by its end
-    if not final < initial:
-        return None, f"no target: {who}'s worst final cost ({final:.4g}) is not below the initial {initial:.4g}"
+    finals: dict[str, list[float]] = {}
+    for r in steps:
+        if math.isfinite(r["final_cost"]):
+            finals.setdefault(r["entrant"], []).append(r["final_cost"])
+    if not finals:
+        return None, "no target: every run diverged"
+    who, why = settings.reference, ""
+    if who not in finals or not max(finals[who]) < initial:
+        # The reference is missing, diverged everywhere or did not improve: take the target from the best
+        # entrant (lowest median final cost) whose every seed improved, and say so.
+        why = (f"{who} diverged in every run" if who not in finals else
+               f"{who}'s worst final cost ({max(finals[who]):.4g}) is not below the initial {initial:.4g}")
+        improved = [k for k in finals if max(finals[k]) < initial]
+        if not improved:
+            return None, f"no target: {why}, nor is any other entrant's"
+        who = min(improved, key=lambda k: statistics.median(finals[k]))
+        why = f" ({why}, so the best entrant's is used)"
+    final = max(finals[who])  # the worst seed: every seed of that entrant reaches the target by its end
     f = settings.target_fraction
     if final > 0:  # costs spanning decades: interpolate on a log scale
         target, how = initial ** (1 - f) * final ** f, "on a log scale"
     else:
         target, how = initial - f * (initial - final), "linearly (a cost <= 0 has no logarithm)"
     return target, (f"{f:.0%} of the way from the initial held-out cost {initial:.4g} (median over seeds) to "
-                    f"{who}'s worst final cost over seeds in the steps race, {final:.4g}, {how}: {target:.4g}")
+                    f"{who}'s worst final cost over seeds in the steps race, {final:.4g}, {how}: {target:.4g}{why}")
 
 
 def _median_with_misses(values: Sequence[float]) -> float:

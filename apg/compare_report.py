@@ -215,7 +215,9 @@ def _settings_text(entrant) -> str:
         return (f"{p.epochs} epochs x {p.minibatches} minibatches, clip {p.clip:g}, gamma {p.gamma:g}, "
                 f"lambda {p.lam:g}, initial noise {p.init_noise:g}")
     e = entrant.estimator
-    return {"analytic": "-",
+    return {"analytic": f"{e.window}-step windows" if e.window else "-",
+            "terminal_value": f"{e.window}-step windows, value net {list(e.critic_hidden)}, lr {e.critic_lr:g}, "
+                              f"{e.critic_iterations} fits per iteration",
             "es": f"{e.pairs} antithetic pairs, sigma {e.sigma:g}" + (", rank shaping" if e.rank_shaping else ""),
             "likelihood_ratio": f"{e.samples} rollouts per state, action noise {e.action_noise:g}, {e.baseline} baseline",
             "alpha_order": f"alpha {e.alpha:g}, {e.samples} rollouts per state, action noise {e.action_noise:g}"}.get(

@@ -6,7 +6,13 @@ takes any of them, so adding one is adding a class here and a YAML file in ``con
 
 Which objective each one estimates (its reference gradient, :meth:`GradientEstimator.reference_gradient`):
 
-* ``analytic``: the exact minibatch objective, by backpropagation through time.
+* ``analytic``: the exact minibatch objective, by backpropagation through time. With ``window > 0`` the
+  rollout is cut into windows with the state detached between them (truncated BPTT): a biased, myopic gradient
+  whose step-Jacobian products never span more than ``window`` steps.
+* ``terminal_value``: truncated BPTT windows, each ending in a learned value function of the state and the time
+  left, fitted to the rollouts' cost-to-go (the short-horizon actor-critic of Xu, Makoviychuk, Narang, Ramos,
+  Matusik, Garg, Macklin 2022, "Accelerated policy learning with parallel differentiable simulation"); the value
+  carries the gradient of the cost beyond each window, as far as it is learned.
 * ``es``: the parameter-smoothed objective ``J_sigma(theta) = E_eps[J(theta + sigma eps)]``, eps ~ N(0, I),
   by Gaussian smoothing with antithetic pairs (Salimans, Ho, Chen, Sidor, Sutskever 2017, "Evolution strategies
   as a scalable alternative to reinforcement learning"; the smoothing identity is Nesterov & Spokoiny 2017).
@@ -38,7 +44,8 @@ import torch
 from torch import Tensor, nn
 from torch.func import functional_call, vmap
 
-from apg.rollout import RolloutOptions, Trajectory, rollout
+from apg.policies import Normaliser
+from apg.rollout import RolloutOptions, Trajectory, rollout, truncated_rollout
 from envs.base import System, check_record
 
 BASELINES = ("leave_one_out", "none")
@@ -48,7 +55,7 @@ BASELINES = ("leave_one_out", "none")
 class EstimatorSettings:
     """Which estimator to use and its settings; ``configs/estimator/*.yaml`` fill this record."""
 
-    name: str = "analytic"  # analytic | es | likelihood_ratio | alpha_order
+    name: str = "analytic"  # analytic | terminal_value | es | likelihood_ratio | alpha_order
     pairs: int = 16  # es: antithetic perturbation pairs per estimate (2 x pairs rollouts of every initial state)
     sigma: float = 0.02  # es: standard deviation of the parameter perturbation (parameter units)
     rank_shaping: bool = False  # es: centred-rank fitness shaping (Salimans et al. 2017); biased, scale-free
@@ -56,13 +63,23 @@ class EstimatorSettings:
     action_noise: float = 0.1  # likelihood_ratio, alpha_order: noise std as a fraction of each action's half-range
     baseline: str = "leave_one_out"  # likelihood_ratio, alpha_order: leave_one_out | none
     alpha: float = 0.5  # alpha_order: weight of the first-order term (1: pathwise only, 0: likelihood ratio only)
+    window: int = 0  # analytic, terminal_value: steps per truncated-BPTT window, state detached between (0: none)
+    critic_hidden: tuple[int, ...] = (64, 64)  # terminal_value: widths of the value network (tanh)
+    critic_lr: float = 1.0e-3  # terminal_value: Adam learning rate of the value network
+    critic_iterations: int = 16  # terminal_value: value-regression steps per estimate
 
     def __post_init__(self) -> None:
         if self.name not in ESTIMATORS:
             raise ValueError(f"name must be one of {', '.join(sorted(ESTIMATORS))}; got {self.name!r}")
         if self.baseline not in BASELINES:
             raise ValueError(f"baseline must be one of {', '.join(BASELINES)}; got {self.baseline!r}")
-        check_record(self, positive=("pairs", "sigma", "samples", "action_noise"))
+        check_record(self, positive=("pairs", "sigma", "samples", "action_noise", "critic_lr", "critic_iterations"),
+                     nonnegative=("window",))
+        if any(int(h) < 1 for h in self.critic_hidden):
+            raise ValueError(f"critic_hidden widths must be >= 1, got {list(self.critic_hidden)}")
+        if self.name == "terminal_value" and self.window < 1:
+            raise ValueError("estimator terminal_value needs window >= 1 (steps per short horizon), e.g. "
+                             "estimator.window=32")
         if not 0.0 <= self.alpha <= 1.0:
             raise ValueError(f"alpha must be in [0, 1], got {self.alpha}")
         if self.baseline == "leave_one_out" and self.samples < 2 and "baseline" in ESTIMATORS[self.name].uses:
@@ -101,7 +118,15 @@ class GradientEstimator(abc.ABC):
     objective: ClassVar[str] = "exact minibatch objective"  # what reference_gradient differentiates
     uses: ClassVar[tuple[str, ...]] = ()  # the EstimatorSettings fields it reads (others warn when set)
     sample_field: ClassVar[str | None] = None  # the field that sets its number of samples per estimate
+    stateful: ClassVar[bool] = False  # learns across iterations (state_dict is not empty)
     rollout_options: RolloutOptions = RolloutOptions()  # how differentiable rollouts run (memory, compilation)
+
+    def state_dict(self) -> dict:
+        """What the estimator learns across iterations (a critic, say), for checkpoints; empty for most."""
+        return {}
+
+    def load_state_dict(self, state: dict) -> None:
+        """Restore :meth:`state_dict` (from a checkpoint)."""
 
     def with_rollout_options(self, options: RolloutOptions) -> "GradientEstimator":
         """A copy of this estimator whose differentiable rollouts run with ``options``."""
@@ -132,19 +157,144 @@ def _bptt(loss: Tensor, policy: nn.Module) -> tuple[Tensor, ...]:
 
 
 class Analytic(GradientEstimator):
-    """The exact gradient of the minibatch objective by backpropagation through time."""
+    """The exact gradient of the minibatch objective by backpropagation through time; with ``window`` > 0 the
+    truncated gradient (state detached every ``window`` steps, :func:`apg.rollout.truncated_rollout`)."""
 
     name = "analytic"
     title = "BPTT (exact gradient)"
+    uses = ("window",)
 
     def __init__(self, settings: EstimatorSettings | None = None) -> None:
         self.settings = settings or EstimatorSettings()
+        if self.settings.window:
+            self.title = f"BPTT truncated to {self.settings.window}-step windows"
+            self.objective = "none (truncated gradient: biased)"
 
     def estimate(self, system: System, policy: nn.Module, x0: Tensor, horizon: int,
                  generator: torch.Generator) -> Estimate:
-        traj = rollout(system, policy, x0, horizon, **self.rollout_options.as_kwargs())
+        if self.settings.window and self.settings.window < horizon:
+            traj, _ = truncated_rollout(system, policy, x0, horizon, self.settings.window,
+                                        **self.rollout_options.as_kwargs())
+        else:
+            traj = rollout(system, policy, x0, horizon, **self.rollout_options.as_kwargs())
         loss = traj.total_cost.mean()
         return Estimate(loss.detach(), _bptt(loss, policy), x0.shape[0] * horizon, traj.detach())
+
+    def reference_gradient(self, system: System, policy: nn.Module, x0: Tensor, horizon: int,
+                           generator: torch.Generator, samples: int) -> tuple[Tensor, ...] | None:
+        return None if self.settings.window and self.settings.window < horizon else super().reference_gradient(
+            system, policy, x0, horizon, generator, samples)
+
+
+class ValueNetwork(nn.Module):
+    """``V(obs, time left)``: the expected cost-to-go, from normalised inputs, in the cost's own units."""
+
+    def __init__(self, obs_dim: int, hidden: tuple[int, ...]) -> None:
+        super().__init__()
+        self.obs_normaliser = Normaliser(obs_dim, "running", 1e-3)
+        self.target_normaliser = Normaliser(1, "running", 1e-6)
+        widths = [obs_dim + 1, *hidden]
+        layers: list[nn.Module] = []
+        for a, b in zip(widths[:-1], widths[1:]):
+            layers += [nn.Linear(a, b), nn.Tanh()]
+        self.net = nn.Sequential(*layers, nn.Linear(widths[-1], 1))
+
+    def normalised(self, obs: Tensor, time_left: Tensor) -> Tensor:
+        return self.net(torch.cat([self.obs_normaliser(obs), time_left.unsqueeze(-1)], -1)).squeeze(-1)
+
+    def forward(self, obs: Tensor, time_left: Tensor) -> Tensor:
+        t = self.target_normaliser
+        return self.normalised(obs, time_left) * t.var.sqrt().clamp_min(t.floor) + t.mean
+
+
+class TerminalValue(GradientEstimator):
+    """Short-horizon actor-critic (Xu et al. 2022): truncated-BPTT windows that end in a learned value.
+
+    Each estimate rolls the whole horizon out in windows of ``window`` steps, the state detached between windows.
+    A value network ``V(observe(x), time left / horizon)`` is first regressed (``critic_iterations`` Adam steps)
+    onto the Monte-Carlo cost-to-go of every state of this batch of rollouts; then the policy's gradient is that
+    of ``sum over windows of (the window's costs + V(state at its end))``, the last window ending in the
+    terminal cost instead. ``dV/dx`` stands in for the costate the truncation cut. The value network, its
+    optimiser and its normalisers are in :meth:`state_dict`, so a resumed run continues with them. Costs
+    ``B * horizon`` simulator steps, like ``analytic``. Xu et al. use TD(lambda) targets over a continuing
+    rollout; this finite-horizon version uses the exact cost-to-go of each rollout instead.
+    """
+
+    name = "terminal_value"
+    title = "BPTT windows + learned terminal value"
+    objective = "none (biased by the learned value)"
+    uses = ("window", "critic_hidden", "critic_lr", "critic_iterations")
+    stateful = True
+
+    def __init__(self, settings: EstimatorSettings | None = None) -> None:
+        self.settings = settings or EstimatorSettings(name="terminal_value", window=32)
+        self.critic: ValueNetwork | None = None
+        self.optimiser: torch.optim.Optimizer | None = None
+        self._pending: dict | None = None  # state loaded before the critic was built
+
+    def _build(self, obs_dim: int, dtype: torch.dtype) -> ValueNetwork:
+        if self.critic is None:
+            self.critic = ValueNetwork(obs_dim, tuple(self.settings.critic_hidden)).to(dtype)
+            self.optimiser = torch.optim.Adam(self.critic.parameters(), lr=self.settings.critic_lr)
+            if self._pending is not None:
+                self.critic.load_state_dict(self._pending["critic"])
+                self.optimiser.load_state_dict(self._pending["optimiser"])
+                self._pending = None
+        return self.critic
+
+    def state_dict(self) -> dict:
+        if self.critic is None:
+            return copy.deepcopy(self._pending or {})
+        return {"critic": self.critic.state_dict(), "optimiser": self.optimiser.state_dict()}
+
+    def load_state_dict(self, state: dict) -> None:
+        if not state:
+            return
+        self.critic, self.optimiser, self._pending = None, None, copy.deepcopy(state)
+
+    def fit(self, obs: Tensor, time_left: Tensor, targets: Tensor, generator: torch.Generator) -> float:
+        """Regress the value onto ``targets`` (cost-to-go) at ``obs``, ``time_left`` (flat); returns the final
+        mean squared error in normalised units."""
+        critic = self._build(obs.shape[-1], obs.dtype)
+        critic.obs_normaliser.update(obs)
+        critic.target_normaliser.update(targets.unsqueeze(-1))
+        t = critic.target_normaliser
+        goal = (targets - t.mean) / t.var.sqrt().clamp_min(t.floor)
+        n = obs.shape[0]
+        size = min(n, 4096)
+        loss = torch.zeros(())
+        for _ in range(self.settings.critic_iterations):
+            idx = torch.randint(n, (size,), generator=generator)
+            loss = (critic.normalised(obs[idx], time_left[idx]) - goal[idx]).pow(2).mean()
+            self.optimiser.zero_grad(set_to_none=True)
+            loss.backward()
+            self.optimiser.step()
+        return float(loss.detach())
+
+    def estimate(self, system: System, policy: nn.Module, x0: Tensor, horizon: int,
+                 generator: torch.Generator) -> Estimate:
+        window = self.settings.window
+        traj, ends = truncated_rollout(system, policy, x0, horizon, window, **self.rollout_options.as_kwargs())
+        # Fit the value to this batch's cost-to-go from every state (time left as a fraction of the horizon).
+        with torch.no_grad():
+            to_go = torch.cat([traj.costs.flip(0).cumsum(0).flip(0) + traj.terminal, traj.terminal[None]])  # (T+1, B)
+            steps_left = torch.arange(horizon, -1, -1, dtype=x0.dtype)  # (T+1,)
+            obs = system.observe(traj.states.detach())  # (T+1, B, obs)
+            left = (steps_left / horizon)[:, None].expand(to_go.shape)
+        self.fit(obs.reshape(-1, obs.shape[-1]), left.reshape(-1), to_go.reshape(-1), generator)
+        critic = self.critic
+        assert critic is not None
+        bootstrap = torch.zeros((), dtype=x0.dtype)
+        for k, x_end in enumerate(ends):
+            left_k = torch.full(x_end.shape[:1], (horizon - (k + 1) * window) / horizon, dtype=x0.dtype)
+            bootstrap = bootstrap + critic(system.observe(x_end), left_k).mean()
+        surrogate = traj.total_cost.mean() + bootstrap
+        grads = _bptt(surrogate, policy)
+        return Estimate(traj.total_cost.mean().detach(), grads, x0.shape[0] * horizon, traj.detach())
+
+    def reference_gradient(self, system: System, policy: nn.Module, x0: Tensor, horizon: int,
+                           generator: torch.Generator, samples: int) -> tuple[Tensor, ...] | None:
+        return None
 
 
 # ---- batched rollouts of many parameter vectors or many noise draws --------------------------------------------
@@ -345,7 +495,7 @@ class AlphaOrder(_ActionNoise):
 
 
 ESTIMATORS: dict[str, type[GradientEstimator]] = {
-    cls.name: cls for cls in (Analytic, EvolutionStrategies, LikelihoodRatio, AlphaOrder)}
+    cls.name: cls for cls in (Analytic, TerminalValue, EvolutionStrategies, LikelihoodRatio, AlphaOrder)}
 
 
 def make_estimator(settings: EstimatorSettings) -> GradientEstimator:

@@ -4,7 +4,8 @@ Two options change how a differentiable rollout runs, never what it computes (be
 ``checkpoint_every=k`` keeps only the state at every k-th step for the backward pass and recomputes each window
 of k steps when it is needed (activation checkpointing, Chen, Xu, Zhang, Guestrin 2016, "Training deep nets
 with sublinear memory cost"; ``torch.utils.checkpoint``), and ``compile=True`` runs the closed-loop step
-through ``torch.compile``.
+through ``torch.compile``. :func:`truncated_rollout` is different: it detaches the state between windows, which
+does change the gradient (truncated BPTT).
 """
 
 from __future__ import annotations
@@ -120,6 +121,34 @@ def rollout(system: System, policy: nn.Module, x0: Tensor, horizon: int, *, chec
         after, actions, costs = _window(step, system, policy, x0, horizon)
         states, x = torch.cat([x0[None], after]), after[-1]  # (T+1, B, state_dim)
     return Trajectory(states, actions, costs, system.terminal_cost(x))
+
+
+def truncated_rollout(system: System, policy: nn.Module, x0: Tensor, horizon: int, window: int,
+                      **options: Any) -> tuple[Trajectory, list[Tensor]]:
+    """:func:`rollout` in windows of ``window`` steps with the state detached at every window boundary.
+
+    Truncated backpropagation through time (Williams & Peng 1990, "An efficient gradient-based algorithm for
+    on-line training of recurrent network trajectories"): the gradient of a cost reaches only the actions of its
+    own window, so products of step Jacobians never span more than ``window`` steps. That bounds their growth on
+    chaotic or stiff dynamics, at the price of a biased (myopic) gradient. Returns the whole trajectory (its costs
+    carry the truncated graph) and the state at the end of each window except the last, still attached to its
+    own window's graph, for a terminal value to be added there (:class:`apg.estimators.TerminalValue`).
+    ``options`` go to :func:`rollout`.
+    """
+    if window < 1:
+        raise ValueError(f"window must be >= 1 step, got {window}")
+    parts, ends, x, done = [], [], x0, 0
+    while done < horizon:
+        k = min(window, horizon - done)
+        part = rollout(system, policy, x.detach() if done else x, k, **options)
+        parts.append(part)
+        x, done = part.states[-1], done + k
+        if done < horizon:
+            ends.append(x)
+    states = torch.cat([x0[None], *(p.states[1:] for p in parts)])
+    traj = Trajectory(states, torch.cat([p.actions for p in parts]), torch.cat([p.costs for p in parts]),
+                      parts[-1].terminal)
+    return traj, ends
 
 
 @dataclass(frozen=True)

@@ -25,6 +25,7 @@ from apg import distributed
 from apg.checkpoint import (CHECKPOINT_NAME, CheckpointError, atomic_write_text, config_digest, load_checkpoint,
                             save_checkpoint)
 from apg.distributed import Shard
+from apg.diagnostics import GradientProfile, gradient_profile
 from apg.ensemble import ParameterRanges
 from apg.estimators import GradientEstimator
 from apg.optim import OptimSettings, learning_rate, make_optimiser
@@ -38,7 +39,8 @@ DTYPES = {"float32": torch.float32, "float64": torch.float64}
 METRICS_NAME = "metrics.json"
 CONFIG_NAME = "config.yaml"
 # Config keys that may change between a run and its resumption without changing its result (beyond rounding).
-RUNTIME_KEYS = ("resume", "progress", "threads", "train.bptt_window", "train.compile_step")
+RUNTIME_KEYS = ("resume", "progress", "threads", "train.bptt_window", "train.compile_step", "train.diagnose_every",
+                "train.diagnose_batch")
 
 
 @dataclass(frozen=True)
@@ -59,8 +61,15 @@ class TrainSettings:
     dtype: str = "float32"  # float32 | float64
     max_env_steps: int = 0  # stop once this many simulator steps are spent (0: no limit); for equal-budget races
     max_wall_seconds: float = 0.0  # stop after this much training time (0: no limit)
-    bptt_window: int = 0  # steps per activation-checkpointing window of the training rollout (0: off); saves memory
+    bptt_window: int = 0  # steps per activation-checkpointing window (0: off): saves memory, same gradient; for
+    # truncated BPTT, which changes the gradient, see estimator.window
     compile_step: bool = False  # torch.compile the closed-loop step of the training rollout (compiles on first use)
+    horizon_start: int = 0  # horizon schedule: start at this many steps, grow linearly to horizon (0: fixed horizon)
+    continuation_param: str = ""  # a positive system parameter to anneal, e.g. contact_smoothing (empty: none)
+    continuation_start: float = 0.0  # its value at iteration 0, moving geometrically to the configured value
+    ramp_fraction: float = 0.5  # share of the iterations over which horizon_start and continuation_start ramp
+    diagnose_every: int = 100  # iterations between per-time-step gradient diagnostics (apg.diagnostics; 0: off)
+    diagnose_batch: int = 16  # initial states the diagnostics roll out
 
     def __post_init__(self) -> None:
         if self.dtype not in DTYPES:
@@ -68,11 +77,42 @@ class TrainSettings:
         check_record(self, positive=("iterations", "batch_size", "horizon", "eval_every", "eval_batch",
                                      "checkpoint_every", "figure_trajectories"),
                      nonnegative=("grad_clip", "eval_horizon", "figure_every", "max_env_steps", "max_wall_seconds",
-                                  "bptt_window"))
+                                  "bptt_window", "horizon_start", "continuation_start", "diagnose_every"))
+        check_record(self, positive=("diagnose_batch",))
+        if self.horizon_start > self.horizon:
+            raise ValueError(f"horizon_start ({self.horizon_start}) must not exceed horizon ({self.horizon})")
+        if not 0.0 < self.ramp_fraction <= 1.0:
+            raise ValueError(f"ramp_fraction must be in (0, 1], got {self.ramp_fraction}")
+        if bool(self.continuation_param) != (self.continuation_start > 0):
+            raise ValueError("continuation_param and continuation_start go together: name the system parameter "
+                             "(e.g. continuation_param=contact_smoothing) and its value at the start (> 0), or "
+                             f"neither; got {self.continuation_param!r} and {self.continuation_start}")
 
     @property
     def eval_steps(self) -> int:
         return self.eval_horizon or self.horizon
+
+    def _progress(self, it: int) -> float:
+        """How far the ramps have come at iteration ``it`` (0 to 1)."""
+        return min(1.0, it / max(1.0, self.ramp_fraction * self.iterations))
+
+    def horizon_at(self, it: int) -> int:
+        """The training horizon at iteration ``it``: linear from ``horizon_start`` to ``horizon``."""
+        if not self.horizon_start:
+            return self.horizon
+        return round(self.horizon_start + (self.horizon - self.horizon_start) * self._progress(it))
+
+    @property
+    def mean_horizon(self) -> float:
+        """The average training horizon over the run (what a step budget buys per iteration)."""
+        if not self.horizon_start:
+            return float(self.horizon)
+        r = self.ramp_fraction
+        return (1 - r) * self.horizon + r * (self.horizon_start + self.horizon) / 2
+
+    def continuation_at(self, it: int, final: float) -> float:
+        """The annealed parameter at iteration ``it``: geometric from ``continuation_start`` to ``final``."""
+        return self.continuation_start * (final / self.continuation_start) ** self._progress(it)
 
 
 class RunExistsError(RuntimeError):
@@ -91,6 +131,8 @@ class Monitor:
     def iteration(self, it: int, stats: dict[str, float]) -> None: ...
 
     def evaluation(self, it: int, result: Evaluation) -> None: ...
+
+    def diagnostics(self, it: int, profile: "GradientProfile") -> None: ...
 
     def end(self, metrics: dict[str, Any]) -> None: ...
 
@@ -143,6 +185,25 @@ def _check_resumable(saved: dict[str, Any], config: dict[str, Any], path: Path) 
                              f"the original settings, or start a new run in another directory")
 
 
+def _check_continuation(system: System, settings: TrainSettings, ensemble: ParameterRanges | None) -> float | None:
+    """The configured (final) value of the annealed parameter, after checking it can be annealed."""
+    name = settings.continuation_param
+    if not name:
+        return None
+    fields = {f.name for f in dataclasses.fields(system.params)}
+    if name not in fields:
+        raise ValueError(f"train.continuation_param={name!r} is not a parameter of {system.name}; its parameters "
+                         f"are {', '.join(sorted(fields))}")
+    final = getattr(system.params, name)
+    if isinstance(final, Tensor) or not isinstance(final, (int, float)) or final <= 0:
+        raise ValueError(f"train.continuation_param={name!r} must be a positive number in {system.name}'s "
+                         f"parameters (got {final!r})")
+    if ensemble and name in {r[0] for r in ensemble.ranges}:
+        raise ValueError(f"train.continuation_param={name!r} is also drawn by system.ensemble; anneal another "
+                         f"parameter or remove it from the ensemble")
+    return float(final)
+
+
 def train(system: System, policy_settings: PolicySettings, optim_settings: OptimSettings,
           estimator: GradientEstimator, settings: TrainSettings, *, seed: int, run_dir: Path,
           resume: bool = False, config: dict[str, Any] | None = None,
@@ -174,6 +235,10 @@ def train(system: System, policy_settings: PolicySettings, optim_settings: Optim
     options = RolloutOptions(settings.bptt_window, settings.compile_step)
     if options != RolloutOptions():
         estimator = estimator.with_rollout_options(options)
+    if shard.parallel and estimator.stateful:
+        raise ValueError(f"estimator {estimator.name} learns across iterations (its critic would differ between "
+                         f"processes); it does not support data-parallel training. Run it in one process")
+    annealed = _check_continuation(system, settings, ensemble)
 
     def open_run() -> dict[str, Any] | None:
         run_dir.mkdir(parents=True, exist_ok=True)
@@ -219,6 +284,7 @@ def train(system: System, policy_settings: PolicySettings, optim_settings: Optim
         torch.set_rng_state(saved["torch_rng"])
         start, env_steps, wall_before = saved["iteration"], saved["env_steps"], saved["wall_time_s"]
         last_eval = saved.get("last_eval")
+        estimator.load_state_dict(saved.get("estimator_state") or {})
         log.info("resuming %s at iteration %d", run_dir, start)
     distributed.sync_module(policy, shard)
 
@@ -239,7 +305,7 @@ def train(system: System, policy_settings: PolicySettings, optim_settings: Optim
             "optimiser": optimiser.state_dict(), "generator": train_gen.get_state(),
             "estimator_generator": estimator_gen.get_state(), "torch_rng": torch.get_rng_state(),
             "env_steps": env_steps, "wall_time_s": elapsed(), "system": system.name, "config": config,
-            "config_digest": config_digest(config), "last_eval": last_eval,
+            "config_digest": config_digest(config), "last_eval": last_eval, "estimator_state": estimator.state_dict(),
         })
 
     def run_eval(iteration: int) -> None:
@@ -265,15 +331,25 @@ def train(system: System, policy_settings: PolicySettings, optim_settings: Optim
             run_eval(0)
         stop = budget_spent()
         while it < settings.iterations and not stop:
+            horizon = settings.horizon_at(it)
+            train_system = system
+            if annealed is not None:
+                value = settings.continuation_at(it, annealed)
+                train_system = system.replace(params=dataclasses.replace(
+                    system.params, **{settings.continuation_param: value}))
+            # Every rank draws the whole minibatch and keeps its share (apg.distributed).
+            x0 = system.sample_initial(settings.batch_size, train_gen, dtype)
+            if settings.diagnose_every and it % settings.diagnose_every == 0 and monitors:
+                profile = gradient_profile(train_system, policy, x0[: settings.diagnose_batch], horizon)
+                for m in monitors:
+                    m.diagnostics(it, profile)
             t0 = time.perf_counter()
             lr = learning_rate(optim_settings, it, settings.iterations)
             for group in optimiser.param_groups:
                 group["lr"] = lr
-            # Every rank draws the whole minibatch and keeps its share (apg.distributed).
-            x0 = system.sample_initial(settings.batch_size, train_gen, dtype)
-            models = ensemble.sample(system, settings.batch_size, train_gen, dtype) if ensemble else system
+            models = ensemble.sample(train_system, settings.batch_size, train_gen, dtype) if ensemble else train_system
             x0, models = shard.take(x0), shard.take_models(models, settings.batch_size)
-            est = estimator.estimate(models, policy, x0, settings.horizon, estimator_gen)
+            est = estimator.estimate(models, policy, x0, horizon, estimator_gen)
             if shard.parallel:
                 grads, loss, sim_steps = distributed.reduce_gradient(est.grads, est.loss, est.sim_steps, x0.shape[0],
                                                                      settings.batch_size, shard)
@@ -284,13 +360,14 @@ def train(system: System, policy_settings: PolicySettings, optim_settings: Optim
                 if est.trajectory is not None:
                     step = _first_nonfinite_step(est.trajectory.states)
                     if step is not None:
-                        where = f" The state first became non-finite at step {step} of {settings.horizon}."
+                        where = f" The state first became non-finite at step {step} of {horizon}."
                 raise NonFiniteError(
                     f"non-finite {'cost' if not torch.isfinite(est.loss) else 'gradient'} at iteration {it}.{where} "
                     f"Likely causes: a learning rate too high for this system (optim.lr={optim_settings.lr}), a time "
                     f"step too large for the dynamics (system.dt={system.dt}, integrator={system.integrator}), or "
-                    f"gradients exploding over a long horizon (train.horizon={settings.horizon}; try train.grad_clip "
-                    f"or a shorter horizon). The last good checkpoint is kept: {ckpt_path if ckpt_path.exists() else 'none yet'}.")
+                    f"gradients exploding over a long horizon (train.horizon={horizon}; try train.grad_clip, a "
+                    f"shorter horizon, truncated windows estimator.window=<steps>, or a horizon schedule "
+                    f"train.horizon_start=<steps>). The last good checkpoint is kept: {ckpt_path if ckpt_path.exists() else 'none yet'}.")
             for p, g in zip(params, est.grads):
                 p.grad = g
             if settings.grad_clip > 0:
@@ -303,7 +380,9 @@ def train(system: System, policy_settings: PolicySettings, optim_settings: Optim
             dt_iter = time.perf_counter() - t0
             stats = {"cost": float(est.loss), "grad_norm": float(grad_norm), "learning_rate": lr,
                      "iteration_seconds": dt_iter, "sim_steps_per_second": est.sim_steps / max(dt_iter, 1e-9),
-                     "env_steps": float(env_steps), "wall_time_s": elapsed()}
+                     "env_steps": float(env_steps), "wall_time_s": elapsed(), "horizon": float(horizon)}
+            if annealed is not None:
+                stats["continuation"] = value
             for m in monitors:
                 m.iteration(it, stats)
             stop = budget_spent()

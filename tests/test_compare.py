@@ -125,11 +125,21 @@ def test_evaluation_schedule_is_geometric_and_ends_at_the_last_iteration():
     assert evaluation_schedule(5, 10) == {1, 2, 3, 4, 5}
 
 
-def test_no_target_when_the_reference_does_not_improve():
+def test_no_target_when_no_entrant_improves():
     flat = {k: [(s, t, 10.0 + 0.0 * c) for s, t, c in v] for k, v in CURVES.items()}
     result = _result(flat)
     assert result.target is None and "not below" in result.target_note
     assert all(math.isinf(r["steps_to_target"]) for r in summarise(result))
+
+
+def test_target_falls_back_to_the_best_entrant_when_the_reference_does_not_improve():
+    stuck = {k: ([(s, t, 10.0) for s, t, _ in v] if k[0] == "analytic" else v) for k, v in CURVES.items()}
+    result = _result(stuck)
+    # es's worst final cost is 2.5: 95 % of the way from 10 on a log scale.
+    assert result.target == pytest.approx(10 ** 0.05 * 2.5 ** 0.95)
+    assert "es's worst final cost" in result.target_note and "analytic's worst final cost (10)" in result.target_note
+    rows = {r["entrant"]: r for r in summarise(result)}
+    assert rows["es"]["reached"] == 2 and math.isnan(rows["es"]["steps_ratio"])  # no ratio to a reference that missed
 
 
 # ---- configuration and the command line --------------------------------------------------------------------------------
@@ -148,6 +158,28 @@ def test_default_config_builds_every_entrant():
     assert es.estimator.rank_shaping and es.train.batch_size == 16 and es.optim.lr == 0.02  # entrant overrides
     assert es.train.horizon == spec.config["train"]["horizon"]  # ... merged over the shared train block
     assert set(spec.study_estimators) == {"analytic", "es", "likelihood_ratio", "alpha_order"}
+
+
+@pytest.mark.parametrize("name", sorted(p.stem for p in (Path(CONFIG_DIR) / "compare").glob("*.yaml")))
+def test_every_shipped_race_builds(name):
+    """Each race preset in configs/compare composes into valid records and every entrant it races exists."""
+    spec = compare_config.build(_compose(f"+compare={name}"))
+    labels = {e.label for e in spec.entrants}
+    assert set(spec.race.only) <= labels and spec.race.reference in labels
+    for e in spec.entrants:
+        assert e.steps_per_iteration > 0 and e.description
+
+
+def test_long_horizon_presets_switch_their_mitigations_on():
+    spec = compare_config.build(_compose("+compare=long_hopper"))
+    by = {e.label: e for e in spec.entrants}
+    assert by["truncated"].estimator.window == 100 and by["truncated"].estimator.name == "analytic"
+    assert by["terminal_value"].estimator.name == "terminal_value"
+    assert by["horizon_schedule"].train.horizon_start == 150
+    assert by["continuation"].train.continuation_param == "contact_smoothing"
+    # The schedule's mean horizon sets its step count: (1 - 0.6) * 600 + 0.6 * (150 + 600) / 2 = 465 steps.
+    assert by["horizon_schedule"].steps_per_iteration == 64 * 465
+    assert "horizon 150 to 600" in by["horizon_schedule"].description
 
 
 @pytest.mark.parametrize("override, named", [

@@ -246,7 +246,8 @@ def test_simulator_steps_are_counted_honestly(name):
     system = _Counting()
     policy = make_policy(PolicySettings(hidden=(4,)), system)
     x0 = system.sample_initial(5, torch.Generator().manual_seed(0))
-    settings = {"es": dict(pairs=3), "likelihood_ratio": dict(samples=2), "alpha_order": dict(samples=2)}
+    settings = {"es": dict(pairs=3), "likelihood_ratio": dict(samples=2), "alpha_order": dict(samples=2),
+                "terminal_value": dict(window=3)}
     est = make_estimator(EstimatorSettings(name=name, **settings.get(name, {})))
     before = [p.detach().clone() for p in policy.parameters()]
     _Counting.rows[0] = 0
