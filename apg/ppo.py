@@ -109,6 +109,9 @@ def train_ppo(system: System, policy_settings: PolicySettings, optim_settings: O
         RunExistsError: ``run_dir`` already holds a checkpoint.
         NonFiniteError: NaN/Inf in the rollouts or the update.
     """
+    if settings.horizon_start or settings.continuation_param:
+        raise ValueError("PPO does not use train.horizon_start or train.continuation_param (the long-horizon "
+                         "switches of the gradient trainer); remove them from the PPO entrant's train block")
     run_dir = Path(run_dir)
     run_dir.mkdir(parents=True, exist_ok=True)
     ckpt_path = run_dir / CHECKPOINT_NAME

@@ -83,3 +83,10 @@ def test_bad_ppo_settings_are_named():
         PPOSettings(gamma=1.5)
     with pytest.raises(ValueError, match="clip must be > 0"):
         PPOSettings(clip=0.0)
+
+
+def test_ppo_refuses_the_gradient_trainers_schedules(tmp_path):
+    settings = TrainSettings(iterations=2, batch_size=4, horizon=10, eval_batch=4, horizon_start=5)
+    with pytest.raises(ValueError, match="horizon_start"):
+        train_ppo(envs.make("pendulum"), SMALL, OptimSettings(), PPOSettings(), settings, seed=0, run_dir=tmp_path)
+    assert not (tmp_path / "checkpoint.pt").exists()
