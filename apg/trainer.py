@@ -365,7 +365,7 @@ def train(system: System, policy_settings: PolicySettings, optim_settings: Optim
                     f"non-finite {'cost' if not torch.isfinite(est.loss) else 'gradient'} at iteration {it}.{where} "
                     f"Likely causes: a learning rate too high for this system (optim.lr={optim_settings.lr}), a time "
                     f"step too large for the dynamics (system.dt={system.dt}, integrator={system.integrator}), or "
-                    f"gradients exploding over a long horizon (train.horizon={horizon}; try train.grad_clip, a "
+                    f"gradients exploding over a long horizon ({horizon} steps this iteration; try train.grad_clip, a "
                     f"shorter horizon, truncated windows estimator.window=<steps>, or a horizon schedule "
                     f"train.horizon_start=<steps>). The last good checkpoint is kept: {ckpt_path if ckpt_path.exists() else 'none yet'}.")
             for p, g in zip(params, est.grads):
