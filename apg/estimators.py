@@ -44,7 +44,7 @@ import torch
 from torch import Tensor, nn
 from torch.func import functional_call, vmap
 
-from apg.policies import Normaliser
+from apg.policies import Normaliser, mlp
 from apg.rollout import RolloutOptions, Trajectory, rollout, truncated_rollout
 from envs.base import System, check_record
 
@@ -193,11 +193,7 @@ class ValueNetwork(nn.Module):
         super().__init__()
         self.obs_normaliser = Normaliser(obs_dim, "running", 1e-3)
         self.target_normaliser = Normaliser(1, "running", 1e-6)
-        widths = [obs_dim + 1, *hidden]
-        layers: list[nn.Module] = []
-        for a, b in zip(widths[:-1], widths[1:]):
-            layers += [nn.Linear(a, b), nn.Tanh()]
-        self.net = nn.Sequential(*layers, nn.Linear(widths[-1], 1))
+        self.net = mlp([obs_dim + 1, *hidden, 1], "tanh")
 
     def normalised(self, obs: Tensor, time_left: Tensor) -> Tensor:
         return self.net(torch.cat([self.obs_normaliser(obs), time_left.unsqueeze(-1)], -1)).squeeze(-1)

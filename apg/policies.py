@@ -42,6 +42,17 @@ class PolicySettings:
         check_record(self, positive=("std_floor", "output_gain"))
 
 
+def mlp(sizes: list[int], activation: str, bias: bool = True) -> nn.Sequential:
+    """Linear layers between consecutive ``sizes``, each but the last followed by ``activation``
+    (a key of ``ACTIVATIONS``): the core of the policies and of the value networks."""
+    layers: list[nn.Module] = []
+    for i, (a, b) in enumerate(zip(sizes[:-1], sizes[1:])):
+        layers.append(nn.Linear(a, b, bias=bias))
+        if i < len(sizes) - 2:
+            layers.append(ACTIVATIONS[activation]())
+    return nn.Sequential(*layers)
+
+
 class Normaliser(nn.Module):
     """``(obs - mean) / max(std, floor)`` with statistics fixed, or merged from batches (Chan et al. 1979)."""
 
@@ -86,16 +97,13 @@ class Policy(nn.Module):
         super().__init__()
         self.settings = settings
         self.normaliser = Normaliser(obs_dim, settings.normalise, settings.std_floor)
-        widths = [obs_dim, *settings.hidden] if settings.kind == "mlp" else [obs_dim]
-        layers: list[nn.Module] = []
-        for a, b in zip(widths[:-1], widths[1:]):
-            layers += [nn.Linear(a, b, bias=settings.bias), ACTIVATIONS[settings.activation]()]
-        last = nn.Linear(widths[-1], len(action_low), bias=settings.bias)
+        hidden = tuple(settings.hidden) if settings.kind == "mlp" else ()
+        self.net = mlp([obs_dim, *hidden, len(action_low)], settings.activation, bias=settings.bias)
+        last = self.net[-1]
         with torch.no_grad():
             last.weight.mul_(settings.output_gain)
             if last.bias is not None:
                 last.bias.zero_()
-        self.net = nn.Sequential(*layers, last)
         low = torch.tensor(action_low, dtype=torch.get_default_dtype())
         high = torch.tensor(action_high, dtype=torch.get_default_dtype())
         if settings.squash == "tanh" and not (torch.isfinite(low).all() and torch.isfinite(high).all()):

@@ -29,7 +29,7 @@ from torch import Tensor, nn
 
 from apg.checkpoint import CHECKPOINT_NAME, atomic_write_text, config_digest, save_checkpoint
 from apg.optim import OptimSettings, learning_rate, make_optimiser
-from apg.policies import ACTIVATIONS, Policy, PolicySettings, make_policy
+from apg.policies import ACTIVATIONS, Policy, PolicySettings, make_policy, mlp
 from apg.rollout import evaluate
 from apg.trainer import (CONFIG_NAME, DTYPES, METRICS_NAME, Monitor, NonFiniteError, RunExistsError, RunInfo,
                          TrainResult, TrainSettings)
@@ -66,11 +66,7 @@ class _Critic(nn.Module):
 
     def __init__(self, obs_dim: int, settings: PPOSettings) -> None:
         super().__init__()
-        widths = [obs_dim + 1, *settings.critic_hidden]
-        layers: list[nn.Module] = []
-        for a, b in zip(widths[:-1], widths[1:]):
-            layers += [nn.Linear(a, b), ACTIVATIONS[settings.critic_activation]()]
-        self.net = nn.Sequential(*layers, nn.Linear(widths[-1], 1))
+        self.net = mlp([obs_dim + 1, *settings.critic_hidden, 1], settings.critic_activation)
 
     def forward(self, obs: Tensor, left: Tensor) -> Tensor:
         return self.net(torch.cat([obs, left.unsqueeze(-1)], dim=-1)).squeeze(-1)
