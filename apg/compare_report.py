@@ -212,8 +212,8 @@ def headline(summary: Sequence[dict[str, Any]], result: RaceResult, budget: str 
 def _settings_text(entrant) -> str:
     if entrant.method == "ppo":
         p = entrant.ppo
-        return (f"{p.epochs} epochs x {p.minibatches} minibatches, clip {p.clip:g}, gamma {p.gamma:g}, "
-                f"lambda {p.lam:g}, initial noise {p.init_noise:g}")
+        return (f"{p.epochs} epochs x {p.minibatches} minibatches, clip ratio {p.clip_ratio:g}, gamma {p.gamma:g}, "
+                f"lambda {p.gae_lambda:g}, initial action std {p.initial_action_std:g}")
     e = entrant.estimator
     return {"analytic": f"{e.window}-step windows" if e.window else "-",
             "terminal_value": f"{e.window}-step windows, value net {list(e.critic_hidden)}, lr {e.critic_lr:g}, "

@@ -91,7 +91,7 @@ def register() -> None:
     OmegaConf.register_new_resolver("apg_rank_suffix", rank_suffix, replace=True)
     cs = ConfigStore.instance()
     cs.store(name="app_schema", node=AppSchema)
-    for cls in envs.REGISTRY.values():
+    for cls in envs.SYSTEMS.values():
         cs.store(group="system", name=f"schema_{cls.name}", node=system_schema(cls))
     cs.store(group="policy", name="schema", node=schema_of(PolicySettings))
     cs.store(group="optim", name="schema", node=schema_of(OptimSettings))
@@ -124,7 +124,7 @@ def build(cfg: DictConfig | dict) -> RunSpec:
     assert isinstance(plain, dict)
     sysc = plain["system"]
     try:
-        system = envs.make(sysc["name"], params=sysc.get("params"), task=sysc.get("task"), dt=sysc.get("dt"),
+        system = envs.build(sysc["name"], params=sysc.get("params"), task=sysc.get("task"), dt=sysc.get("dt"),
                            integrator=sysc.get("integrator", "rk4"))
     except ValueError as e:
         raise ValueError(f"system: {e}") from None

@@ -207,7 +207,7 @@ def _decode(props: Mapping[str, str], path: Path | str) -> dict[str, Any]:
 def system_from_metadata(meta: Mapping[str, Any]) -> System:
     """Rebuild the nominal system an exported policy was trained for, from its metadata alone."""
     try:
-        return envs.make(meta["system"], params=meta["params"], task=meta["task"], dt=meta["dt"],
+        return envs.build(meta["system"], params=meta["params"], task=meta["task"], dt=meta["dt"],
                          integrator=meta.get("integrator", "rk4"))
     except (KeyError, ValueError) as e:
         raise PolicyFileError(f"the metadata does not describe a known system: {e}") from None
@@ -414,7 +414,7 @@ def export(source: Path | str, output: Path | str | None = None, settings: Expor
     say(f"loading {source}")
     policy, state = load_policy(source)
     cfg = state.get("config", {}).get("system", {}) or {}
-    system = envs.make(state["system"], params=cfg.get("params"), task=cfg.get("task"), dt=cfg.get("dt"),
+    system = envs.build(state["system"], params=cfg.get("params"), task=cfg.get("task"), dt=cfg.get("dt"),
                        integrator=cfg.get("integrator", "rk4"))
     deployed = copy.deepcopy(policy).to(torch.float32).eval()
     meta = describe(system, state, settings.opset)

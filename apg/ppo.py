@@ -42,19 +42,19 @@ class PPOSettings:
 
     epochs: int = 10  # passes over each batch of rollouts
     minibatches: int = 8  # minibatches per pass (of batch_size x horizon transitions)
-    clip: float = 0.2  # clip range of the probability ratio (Schulman et al. 2017)
+    clip_ratio: float = 0.2  # clip range of the probability ratio (Schulman et al. 2017)
     gamma: float = 0.99  # discount of the advantage and the value targets (the race still scores undiscounted cost)
-    lam: float = 0.95  # GAE lambda (Schulman et al. 2016)
-    value_coef: float = 0.5
-    entropy_coef: float = 0.0
-    init_noise: float = 0.3  # initial action standard deviation, as a fraction of each action's half-range
+    gae_lambda: float = 0.95  # GAE lambda (Schulman et al. 2016)
+    value_loss_weight: float = 0.5  # weight of the critic's squared error in the joint loss
+    entropy_weight: float = 0.0  # weight of the entropy bonus (0: none)
+    initial_action_std: float = 0.3  # initial action standard deviation, as a fraction of each action's half-range
     critic_hidden: tuple[int, ...] = (64, 64)
     critic_activation: str = "tanh"
 
     def __post_init__(self) -> None:
-        check_record(self, positive=("epochs", "minibatches", "clip", "init_noise"),
-                     nonnegative=("value_coef", "entropy_coef"))
-        for key in ("gamma", "lam"):
+        check_record(self, positive=("epochs", "minibatches", "clip_ratio", "initial_action_std"),
+                     nonnegative=("value_loss_weight", "entropy_weight"))
+        for key in ("gamma", "gae_lambda"):
             if not 0.0 <= getattr(self, key) <= 1.0:
                 raise ValueError(f"{key} must be in [0, 1], got {getattr(self, key)}")
         if self.critic_activation not in ACTIVATIONS:
@@ -122,7 +122,7 @@ def train_ppo(system: System, policy_settings: PolicySettings, optim_settings: O
     critic = _Critic(system.obs_dim, ppo_settings).to(dtype)
     lo = torch.tensor(system.action_low, dtype=dtype)
     hi = torch.tensor(system.action_high, dtype=dtype)
-    log_std = nn.Parameter(torch.log(ppo_settings.init_noise * (hi - lo) / 2))
+    log_std = nn.Parameter(torch.log(ppo_settings.initial_action_std * (hi - lo) / 2))
     params = [*policy.parameters(), log_std, *critic.parameters()]
     optimiser = make_optimiser(optim_settings, params)
     train_gen = torch.Generator().manual_seed(seed)
@@ -181,7 +181,7 @@ def train_ppo(system: System, policy_settings: PolicySettings, optim_settings: O
                     first_returns = rew_t.flip(0).cumsum(0).flip(0)
                     scale = float(first_returns.std().clamp_min(1e-6))
                 values = critic(obs_t, left) * scale
-                adv, targets = advantages(rew_t, values, ppo_settings.gamma, ppo_settings.lam)
+                adv, targets = advantages(rew_t, values, ppo_settings.gamma, ppo_settings.gae_lambda)
             env_steps += b * horizon
             batch_cost = float(-rew_t.sum(0).mean())
             # ---- update: epochs of clipped-surrogate steps on shuffled minibatches ----------------------
@@ -197,11 +197,11 @@ def train_ppo(system: System, policy_settings: PolicySettings, optim_settings: O
                     ad = (ad - ad.mean()) / (ad.std() + 1e-8)  # per-minibatch normalisation: common practice
                     new_logp = _gaussian_logp(a, policy(o), log_std)
                     ratio = torch.exp(new_logp - old_logp)
-                    surrogate = torch.min(ratio * ad, torch.clamp(ratio, 1 - ppo_settings.clip,
-                                                                   1 + ppo_settings.clip) * ad).mean()
+                    surrogate = torch.min(ratio * ad, torch.clamp(ratio, 1 - ppo_settings.clip_ratio,
+                                                                   1 + ppo_settings.clip_ratio) * ad).mean()
                     value_loss = ((critic(o, lf) - tg / scale) ** 2).mean()
                     entropy = (log_std + 0.5 * math.log(2 * math.pi * math.e)).sum()
-                    loss = -surrogate + ppo_settings.value_coef * value_loss - ppo_settings.entropy_coef * entropy
+                    loss = -surrogate + ppo_settings.value_loss_weight * value_loss - ppo_settings.entropy_weight * entropy
                     optimiser.zero_grad(set_to_none=True)
                     loss.backward()
                     grad_norm = torch.nn.utils.clip_grad_norm_(params, settings.grad_clip or float("inf"))

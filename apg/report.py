@@ -108,7 +108,7 @@ def load_subject(path: Path | str, label: str | None = None) -> Subject:
     policy, state = load_policy(path)
     cfg = state.get("config", {}) or {}
     sysc = cfg.get("system", {}) or {}
-    system = envs.make(state["system"], params=sysc.get("params"), task=sysc.get("task"), dt=sysc.get("dt"),
+    system = envs.build(state["system"], params=sysc.get("params"), task=sysc.get("task"), dt=sysc.get("dt"),
                        integrator=sysc.get("integrator", "rk4"))
     train = cfg.get("train", {}) or {}
     run_dir = path if path.is_dir() else path.parent

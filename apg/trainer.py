@@ -39,7 +39,7 @@ DTYPES = {"float32": torch.float32, "float64": torch.float64}
 METRICS_NAME = "metrics.json"
 CONFIG_NAME = "config.yaml"
 # Config keys that may change between a run and its resumption without changing its result (beyond rounding).
-RUNTIME_KEYS = ("resume", "progress", "threads", "train.bptt_window", "train.compile_step", "train.diagnose_every",
+RUNTIME_KEYS = ("resume", "progress", "threads", "train.recompute_every", "train.compile_step", "train.diagnose_every",
                 "train.diagnose_batch")
 
 
@@ -61,7 +61,7 @@ class TrainSettings:
     dtype: str = "float32"  # float32 | float64
     max_env_steps: int = 0  # stop once this many simulator steps are spent (0: no limit); for equal-budget races
     max_wall_seconds: float = 0.0  # stop after this much training time (0: no limit)
-    bptt_window: int = 0  # steps per activation-checkpointing window (0: off): saves memory, same gradient; for
+    recompute_every: int = 0  # steps per activation-checkpointing window (0: off): saves memory, same gradient; for
     # truncated BPTT, which changes the gradient, see estimator.window
     compile_step: bool = False  # torch.compile the closed-loop step of the training rollout (compiles on first use)
     horizon_start: int = 0  # horizon schedule: start at this many steps, grow linearly to horizon (0: fixed horizon)
@@ -77,7 +77,7 @@ class TrainSettings:
         check_record(self, positive=("iterations", "batch_size", "horizon", "eval_every", "eval_batch",
                                      "checkpoint_every", "figure_trajectories"),
                      nonnegative=("grad_clip", "eval_horizon", "figure_every", "max_env_steps", "max_wall_seconds",
-                                  "bptt_window", "horizon_start", "continuation_start", "diagnose_every"))
+                                  "recompute_every", "horizon_start", "continuation_start", "diagnose_every"))
         check_record(self, positive=("diagnose_batch",))
         if self.horizon_start > self.horizon:
             raise ValueError(f"horizon_start ({self.horizon_start}) must not exceed horizon ({self.horizon})")
@@ -232,7 +232,7 @@ def train(system: System, policy_settings: PolicySettings, optim_settings: Optim
     ckpt_path = run_dir / CHECKPOINT_NAME
     config = dict(config or {})
     dtype = DTYPES[settings.dtype]
-    options = RolloutOptions(settings.bptt_window, settings.compile_step)
+    options = RolloutOptions(settings.recompute_every, settings.compile_step)
     if options != RolloutOptions():
         estimator = estimator.with_rollout_options(options)
     if shard.parallel and estimator.stateful:
@@ -429,11 +429,11 @@ def train(system: System, policy_settings: PolicySettings, optim_settings: Optim
 def load_policy(path: Path, system: System | None = None) -> tuple[Policy, dict[str, Any]]:
     """Rebuild the trained policy from a run directory or checkpoint; returns it with the checkpoint."""
     state = load_checkpoint(Path(path))
-    from envs import make
+    from envs import build
 
     if system is None:
         cfg = state.get("config", {}).get("system", {})
-        system = make(state["system"], params=cfg.get("params"), task=cfg.get("task"), dt=cfg.get("dt"),
+        system = build(state["system"], params=cfg.get("params"), task=cfg.get("task"), dt=cfg.get("dt"),
                       integrator=cfg.get("integrator", "rk4"))
     settings = PolicySettings(**{k: tuple(v) if isinstance(v, list) else v for k, v in state["policy_settings"].items()})
     policy = Policy(settings, system.obs_dim, system.action_low, system.action_high)

@@ -32,7 +32,7 @@ def _best_of(fn, repeats: int) -> float:
 
 def measure(batch: int, horizon: int, repeats: int) -> dict:
     torch.manual_seed(0)
-    system = envs.make("cartpole")
+    system = envs.build("cartpole")
     policy = make_policy(PolicySettings(hidden=(64, 64)), system)
     x0 = system.sample_initial(batch, torch.Generator().manual_seed(0))
 

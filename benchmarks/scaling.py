@@ -48,7 +48,7 @@ def _child(spec: dict) -> dict:
 
     torch.set_num_threads(spec["threads"])
     torch.manual_seed(0)
-    system = envs.make("cartpole")
+    system = envs.build("cartpole")
     policy = make_policy(PolicySettings(hidden=(64, 64)), system)
     x0 = system.sample_initial(spec["batch"], torch.Generator().manual_seed(0))
     options = dict(checkpoint_every=spec["window"], compile=spec["compile"])

@@ -1,9 +1,9 @@
 """Differentiable planar systems and their registry.
 
 >>> import envs
->>> sys = envs.make("pendulum", params={"torque_limit": 2.0})
+>>> sys = envs.build("pendulum", params={"torque_limit": 2.0})
 >>> envs.available()
-('acrobot', 'cartpole', 'crane', 'double_integrator', 'hopper', 'paddle', 'pendulum', 'quadrotor')
+('acrobot', 'cartpole', 'crane', 'double_integrator', 'paddle', 'pendulum', 'pogo', 'quadrotor')
 """
 
 from __future__ import annotations
@@ -15,30 +15,30 @@ from envs.base import Quantity, System, make_record
 from envs.cartpole import CartPole
 from envs.crane import Crane
 from envs.double_integrator import DoubleIntegrator
-from envs.hopper import Hopper
+from envs.pogo import Pogo
 from envs.integrators import INTEGRATORS
 from envs.paddle import Paddle
 from envs.pendulum import Pendulum
 from envs.quadrotor import Quadrotor
 
-REGISTRY: dict[str, type[System]] = {cls.name: cls for cls in (DoubleIntegrator, Pendulum, CartPole, Acrobot,
-                                                                 Quadrotor, Crane, Hopper, Paddle)}
+SYSTEMS: dict[str, type[System]] = {cls.name: cls for cls in (DoubleIntegrator, Pendulum, CartPole, Acrobot,
+                                                                 Quadrotor, Crane, Pogo, Paddle)}
 
 
 def available() -> tuple[str, ...]:
-    """Names accepted by :func:`make`."""
-    return tuple(sorted(REGISTRY))
+    """Names accepted by :func:`build`."""
+    return tuple(sorted(SYSTEMS))
 
 
 def system_class(name: str) -> type[System]:
     """The class registered as ``name``; an unknown name lists the valid ones."""
     try:
-        return REGISTRY[name]
+        return SYSTEMS[name]
     except KeyError:
         raise ValueError(f"unknown system {name!r}; choose one of {', '.join(available())}") from None
 
 
-def make(name: str, params: Mapping[str, Any] | None = None, task: Mapping[str, Any] | None = None,
+def build(name: str, params: Mapping[str, Any] | None = None, task: Mapping[str, Any] | None = None,
          dt: float | None = None, integrator: str = "rk4") -> System:
     """Build a system by name, overriding any physical parameter or task setting by keyword.
 
@@ -50,5 +50,5 @@ def make(name: str, params: Mapping[str, Any] | None = None, task: Mapping[str, 
                integrator=integrator)
 
 
-__all__ = ["System", "Quantity", "REGISTRY", "INTEGRATORS", "available", "make", "system_class", "Acrobot", "CartPole",
-           "Crane", "DoubleIntegrator", "Hopper", "Paddle", "Pendulum", "Quadrotor"]
+__all__ = ["System", "Quantity", "SYSTEMS", "INTEGRATORS", "available", "build", "system_class", "Acrobot", "CartPole",
+           "Crane", "DoubleIntegrator", "Pogo", "Paddle", "Pendulum", "Quadrotor"]

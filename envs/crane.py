@@ -7,7 +7,7 @@ hanging, ``b`` viscous rolling resistance of the trolley):
     L phidd + cos(phi) xdd + g sin(phi) = 0
 
 (the standard cart-pendulum derivation; the tests check it against the mass-matrix form of the same Lagrangian).
-Default numbers describe the invented Saltmarsh Quay terminal's yard crane: a 5 t trolley, a 10 t container on
+Default numbers describe the invented Brackwater Quay terminal's yard crane: a 5 t trolley, a 10 t container on
 an 8 m hoist, moved 10 m along the rail.
 """
 

@@ -27,7 +27,7 @@ EXACT = dict(rtol=1e-12, atol=1e-14)
 
 
 def _setup(name: str, batch: int = 6, ensemble: dict | None = None):
-    system = envs.make(name)
+    system = envs.build(name)
     torch.manual_seed(0)
     policy = make_policy(PolicySettings(hidden=(16, 16)), system, torch.Generator().manual_seed(0), dtype=F64)
     x0 = system.sample_initial(batch, torch.Generator().manual_seed(1), F64)
@@ -89,25 +89,25 @@ def test_no_grad_rollout_ignores_the_window():
 def _train(tmp_path, resume=False, **settings):
     s = TrainSettings(**{**dict(iterations=4, batch_size=8, horizon=30, eval_every=4, eval_batch=16, figure_every=0,
                                 checkpoint_every=2, dtype="float64"), **settings})
-    config = {"seed": 1, "train": {"iterations": s.iterations, "bptt_window": s.bptt_window}}
+    config = {"seed": 1, "train": {"iterations": s.iterations, "recompute_every": s.recompute_every}}
     optim = OptimSettings(lr=1e-2, schedule="constant")  # constant: stopping at 2 of 4 and resuming is exact
-    return train(envs.make("pendulum"), PolicySettings(hidden=(16,)), optim, Analytic(), s, seed=1,
+    return train(envs.build("pendulum"), PolicySettings(hidden=(16,)), optim, Analytic(), s, seed=1,
                  run_dir=tmp_path, resume=resume, config=config)
 
 
-def test_training_with_a_bptt_window_matches_plain_training(tmp_path):
+def test_training_with_a_recompute_every_matches_plain_training(tmp_path):
     plain = _train(tmp_path / "plain")
-    windowed = _train(tmp_path / "windowed", bptt_window=8)
+    windowed = _train(tmp_path / "windowed", recompute_every=8)
     for k, v in plain.policy.state_dict().items():
         torch.testing.assert_close(windowed.policy.state_dict()[k], v, **EXACT, msg=k)
 
 
 @pytest.mark.filterwarnings("ignore:train.iterations differs")
 def test_a_run_may_resume_with_checkpointing_switched_on(tmp_path):
-    """train.bptt_window changes memory, not results, so resuming with another value is allowed."""
+    """train.recompute_every changes memory, not results, so resuming with another value is allowed."""
     straight = _train(tmp_path / "straight")
     _train(tmp_path / "resumed", iterations=2)
-    resumed = _train(tmp_path / "resumed", resume=True, bptt_window=8)
+    resumed = _train(tmp_path / "resumed", resume=True, recompute_every=8)
     for k, v in straight.policy.state_dict().items():
         torch.testing.assert_close(resumed.policy.state_dict()[k], v, **EXACT, msg=k)
 
@@ -144,8 +144,8 @@ def test_compiled_step_matches_eager(monkeypatch, tmp_path):
 
 
 def test_bad_window_is_named():
-    with pytest.raises(ValueError, match="bptt_window"):
-        TrainSettings(bptt_window=-1)
+    with pytest.raises(ValueError, match="recompute_every"):
+        TrainSettings(recompute_every=-1)
     with pytest.raises(ValueError, match="checkpoint_every"):
         RolloutOptions(checkpoint_every=-2)
     system, policy, x0 = _setup("cartpole")

@@ -37,7 +37,7 @@ def _lq_gradient(k: np.ndarray, xs: np.ndarray, dt: float = 0.1) -> np.ndarray:
 
 
 def test_study_on_the_quadratic_matches_closed_forms():
-    system = envs.make("double_integrator", dt=0.1)
+    system = envs.build("double_integrator", dt=0.1)
     policy = Policy(LINEAR, 2, system.action_low, system.action_high).to(F64)
     k = np.array([[-2.0, -0.5]])
     with torch.no_grad():
@@ -171,7 +171,7 @@ def test_every_shipped_race_builds(name):
 
 
 def test_long_horizon_presets_switch_their_mitigations_on():
-    spec = compare_config.build(_compose("+compare=long_hopper"))
+    spec = compare_config.build(_compose("+compare=long_pogo"))
     by = {e.label: e for e in spec.entrants}
     assert by["truncated"].estimator.window == 100 and by["truncated"].estimator.name == "analytic"
     assert by["terminal_value"].estimator.name == "terminal_value"

@@ -1,4 +1,4 @@
-"""Soft contact (:mod:`envs.contact`) and the two systems built on it, the hopper and the paddle.
+"""Soft contact (:mod:`envs.contact`) and the two systems built on it, the pogo robot and the paddle.
 
 References: the coefficient of restitution of a linear spring-dashpot (Kelvin-Voigt) contact,
 ``e = exp(-zeta pi / sqrt(1 - zeta^2))`` with ``zeta = c / (2 sqrt(k m))``, is the standard result of the damped
@@ -21,7 +21,7 @@ from torch.autograd import gradcheck
 
 import envs
 from envs.contact import friction_force, kelvin_voigt_restitution, normal_force, smooth_penetration
-from envs.hopper import Hopper, HopperParams
+from envs.pogo import Pogo, PogoParams
 from envs.integrators import INTEGRATORS
 from envs.paddle import Paddle, PaddleParams
 
@@ -169,9 +169,9 @@ def test_contact_force_gradcheck_away_from_at_and_across_onset():
 
 
 # ---------------------------------------------------------------------------------------------------------------
-# the hopper
+# the pogo robot
 # ---------------------------------------------------------------------------------------------------------------
-def hopper_stance(params: HopperParams, x: float = 0.0) -> torch.Tensor:
+def pogo_stance(params: PogoParams, x: float = 0.0) -> torch.Tensor:
     """The standing equilibrium, derived here: the leg vertical and shortened by the body's weight,
     ``l = l0 - M g / k_l``; the foot's smoothed penetration carrying the whole weight, ``k_c d = (M + m) g``, so
     its gap solves ``w log(1 + exp(-g / w)) = d``: ``g = -w log(expm1(d / w))``."""
@@ -182,12 +182,12 @@ def hopper_stance(params: HopperParams, x: float = 0.0) -> torch.Tensor:
     return torch.tensor([[x, foot_z + leg, 0.0, -leg, 0.0, 0.0, 0.0, 0.0]], dtype=F64)
 
 
-@pytest.mark.parametrize("params", [HopperParams(), HopperParams(body_mass=3.0, leg_stiffness=900.0,
+@pytest.mark.parametrize("params", [PogoParams(), PogoParams(body_mass=3.0, leg_stiffness=900.0,
                                                                  contact_smoothing=1e-4, gravity=3.7)],
                          ids=["default", "heavy-low-gravity"])
-def test_hopper_standing_is_an_equilibrium(params):
-    system = Hopper(params)
-    x = hopper_stance(params, x=0.7)
+def test_pogo_standing_is_an_equilibrium(params):
+    system = Pogo(params)
+    x = pogo_stance(params, x=0.7)
     # atol 1e-9 m/s^2: the residual is float64 rounding of forces ~20 N over masses ~1 kg (plus the body's
     # contact force, k w exp(-0.35 / w) ~ 0); a wrong sign or a missing weight term leaves >= 1 m/s^2
     torch.testing.assert_close(system.derivative(x, torch.zeros(1, 2, dtype=F64)), torch.zeros(1, 8, dtype=F64),
@@ -202,11 +202,11 @@ def test_hopper_standing_is_an_equilibrium(params):
                                rtol=0.0, atol=1e-9)
 
 
-def test_hopper_lying_on_the_mat_is_an_equilibrium_and_not_a_success():
+def test_pogo_lying_on_the_mat_is_an_equilibrium_and_not_a_success():
     # Fallen over: the body's disc and the foot each rest on the mat carrying their own weight (gaps from
     # k d = M g and k d = m g as above), the leg at its rest length so it pushes nowhere; and the body, at the
     # mark but only a disc radius high, has not succeeded.
-    system = envs.make("hopper")
+    system = envs.build("pogo")
     p = system.params
 
     def rest_gap(weight: float) -> float:
@@ -224,12 +224,12 @@ def test_hopper_lying_on_the_mat_is_an_equilibrium_and_not_a_success():
 
 
 @pytest.mark.parametrize("integrator", sorted(INTEGRATORS))
-def test_hopper_flight_is_ballistic_whatever_the_actions(integrator):
+def test_pogo_flight_is_ballistic_whatever_the_actions(integrator):
     # In flight only gravity acts on the pair from outside: the centre of mass follows
     # c(t) = c0 + v0 t - g t^2 / 2 e_z exactly (Newton's third law makes leg forces cancel in the sum). RK4
     # integrates constant acceleration exactly; semi-implicit Euler gives c0 + v0 t - g t (t + dt) / 2 (sum the
     # velocity updates: v_n = v0 - n g dt, x_n = x0 + dt sum_{i=1..n} v_i).
-    system = envs.make("hopper", integrator=integrator)
+    system = envs.build("pogo", integrator=integrator)
     g = torch.Generator().manual_seed(3)
     x0 = torch.tensor([[0.0, 2.0, 0.05, -0.5, 0.8, 3.0, 0.0, 0.0],
                        [1.0, 2.5, -0.1, -0.45, -0.5, 2.0, 0.5, -0.3]], dtype=F64)
@@ -250,11 +250,11 @@ def test_hopper_flight_is_ballistic_whatever_the_actions(integrator):
     assert (xs[-1, :, 2:4] - x0[:, 2:4]).abs().max() > 0.05
 
 
-def test_hopper_leg_oscillates_at_the_two_body_frequency_in_flight():
+def test_pogo_leg_oscillates_at_the_two_body_frequency_in_flight():
     # Without leg damping, in flight the leg length obeys mu l'' = -k_l (l - l0) with the reduced mass
     # mu = M m / (M + m) (two bodies on a spring): l(t) = l0 + a cos(w t), w = sqrt(k_l / mu).
-    params = HopperParams(leg_damping=0.0)
-    system = Hopper(params, dt=0.001)
+    params = PogoParams(leg_damping=0.0)
+    system = Pogo(params, dt=0.001)
     amp = 0.02
     x0 = torch.tensor([[0.0, 3.0, 0.0, -(params.leg_rest_length + amp), 0.0, 0.0, 0.0, 0.0]], dtype=F64)
     steps = 400
@@ -269,7 +269,7 @@ def test_hopper_leg_oscillates_at_the_two_body_frequency_in_flight():
     torch.testing.assert_close(length, expected, rtol=0.0, atol=5e-9)
 
 
-def hopper_rhs_absolute(p: HopperParams):
+def pogo_rhs_absolute(p: PogoParams):
     """The hopper in absolute coordinates (body b, foot f), written here from the module docstring's model: the
     leg's spring, damper and thrust act along e = (b - f) / |b - f| with magnitude
     k_l (l0 - l) - c_l l' + u_1, the swing actuator along (e_z, -e_x), foot and body on the mat through the
@@ -296,25 +296,25 @@ def hopper_rhs_absolute(p: HopperParams):
     return rhs
 
 
-def hopper_landing(dt: float, integrator: str = "rk4") -> tuple[torch.Tensor, torch.Tensor]:
+def pogo_landing(dt: float, integrator: str = "rk4") -> tuple[torch.Tensor, torch.Tensor]:
     """Dropped 4 cm onto the mat with the leg leaning and the body drifting, then 0.45 s of random actions held
     for 15 ms each: touch-down, slipping and sticking, thrusts that may lift it off again. Returns the
     trajectory of envs and of the reference, both in absolute coordinates ``(31, 8)``: body, foot, their rates."""
     hold, pieces = 0.015, 30
     per_hold = round(hold / dt)
-    system = envs.make("hopper", dt=hold / per_hold, integrator=integrator)
+    system = envs.build("pogo", dt=hold / per_hold, integrator=integrator)
     g = torch.Generator().manual_seed(5)
     actions = torch.tensor(system.action_high, dtype=F64) * (2 * torch.rand(pieces, 2, generator=g,
                                                                            dtype=F64) - 1)
     x0 = torch.tensor([[0.0, 0.51, 0.06, -0.467, 0.3, -0.2, 0.1, 0.0]], dtype=F64)
     xs = rollout(system, x0, actions.repeat_interleave(per_hold, 0)[:, None, :])[::per_hold, 0]
     absolute = torch.cat([xs[:, 0:2], xs[:, 0:2] + xs[:, 2:4], xs[:, 4:6], xs[:, 4:6] + xs[:, 6:8]], dim=-1)
-    ref = zoh_reference(hopper_rhs_absolute(system.params), absolute[0].numpy(), actions.numpy(), hold)
+    ref = zoh_reference(pogo_rhs_absolute(system.params), absolute[0].numpy(), actions.numpy(), hold)
     return absolute, torch.from_numpy(ref)
 
 
-def test_hopper_landing_and_push_off_match_independent_equations():
-    absolute, ref = hopper_landing(dt=2.5e-4)
+def test_pogo_landing_and_push_off_match_independent_equations():
+    absolute, ref = pogo_landing(dt=2.5e-4)
     assert ref[:, 3].min() < -5e-3 and ref[:, 3].max() > 0  # it did land and squash the mat
     # atol 2e-6 (m, m/s): RK4 at 0.25 ms, measured 8.1e-7 (1.5e-7 at half the step: about second order, not
     # fourth, because friction has a kink where the normal force changes sign, see envs.contact). Measured for
@@ -324,11 +324,11 @@ def test_hopper_landing_and_push_off_match_independent_equations():
 
 
 @pytest.mark.parametrize("integrator", sorted(INTEGRATORS))
-def test_hopper_step_gradcheck_across_touchdown(integrator):
+def test_pogo_step_gradcheck_across_touchdown(integrator):
     # Rows: foot well clear (0.2 m), 3 widths above the mat, at the onset, and squashed 1 cm, with slip speeds
     # inside and outside the friction smoothing; the falling rows reach the mat during the step. Derivatives
     # w.r.t. the state, the actions and the contact parameters (as (B,) tensors, for smoothing schedules).
-    system = envs.make("hopper", integrator=integrator)
+    system = envs.build("pogo", integrator=integrator)
     p = system.params
     w = p.contact_smoothing
     foot_z = torch.tensor([0.2, 3 * w, 0.0, -0.01], dtype=F64)
@@ -388,7 +388,7 @@ def paddle_rhs(p: PaddleParams):
 def test_paddle_bounce_matches_independent_equations():
     # The ball falls 3 cm onto the paddle, which random forces held for 20 ms drive; two bounces in 0.6 s.
     hold, per_hold, pieces = 0.02, 80, 30
-    system = envs.make("paddle", dt=hold / per_hold)  # 0.25 ms: resolves the 0.2 mm onset at ~1 m/s
+    system = envs.build("paddle", dt=hold / per_hold)  # 0.25 ms: resolves the 0.2 mm onset at ~1 m/s
     g = torch.Generator().manual_seed(6)
     actions = system.params.force_limit * (2 * torch.rand(pieces, 1, generator=g, dtype=F64) - 1)
     x0 = torch.tensor([[system.params.ball_radius + 0.03, 0.0, -0.5, 0.2]], dtype=F64)
@@ -416,9 +416,9 @@ def test_default_time_steps_resolve_the_contacts(integrator):
     assert (system.gap(xs[-1]) > 0).all()
     e = (xs[-1, :, 2] - xs[-1, :, 3]) / speeds
     torch.testing.assert_close(e, torch.full_like(e, params.restitution), rtol=0.05, atol=0.0)
-    # Hopper: the landing above at the default 3 ms against the reference; measured 7.8e-6 m (RK4) and 3.7e-3 m
+    # Pogo: the landing above at the default 3 ms against the reference; measured 7.8e-6 m (RK4) and 3.7e-3 m
     # (semi-implicit Euler, first order) in position. Bounds 1e-4 m and 1e-2 m, about 10x and 3x the measurements.
-    absolute, ref = hopper_landing(dt=envs.system_class("hopper").default_dt, integrator=integrator)
+    absolute, ref = pogo_landing(dt=envs.system_class("pogo").default_dt, integrator=integrator)
     torch.testing.assert_close(absolute[:, :4], ref[:, :4], rtol=0.0, atol=1e-4 if integrator == "rk4" else 1e-2)
 
 
@@ -427,7 +427,7 @@ def test_paddle_free_flight_and_free_paddle_match_closed_forms(integrator):
     # Ball far above the paddle: z(t) = z0 + v0 t - g t^2 / 2 (semi-implicit Euler: g t (t + dt) / 2, as for the
     # hopper). Paddle under a constant force u with guide friction b: M p'' = u - b p', so
     # p'(t) = u / b + (p'0 - u / b) e^(-b t / M), p(t) = p0 + u t / b + (p'0 - u / b) M / b (1 - e^(-b t / M)).
-    system = envs.make("paddle", integrator=integrator)
+    system = envs.build("paddle", integrator=integrator)
     p = system.params
     x0 = torch.tensor([[2.0, -0.3, 4.0, 0.2], [3.0, 0.0, -1.0, -0.1]], dtype=F64)
     force = torch.tensor([[12.0], [-7.0]], dtype=F64)
@@ -476,7 +476,7 @@ def test_paddle_success_predicate_on_synthetic_trajectories():
     # Ballistic arcs drawn here (no simulation): a ball bouncing off a still paddle at z = r with apex h, the
     # paddle at home; the predicate must accept h = target and reject a low bounce, a ball lying on the paddle,
     # a paddle lifted out of its travel, and a good bounce that only starts in the last half of the window.
-    system = envs.make("paddle")
+    system = envs.build("paddle")
     t, p = system.task, system.params
     dt, n = system.dt, round(3.0 / system.dt)
 
@@ -503,7 +503,7 @@ def test_paddle_gradcheck_through_a_bounce():
     # A multi-step gradient across the whole impact: 30 steps (0.12 s) from 2 mm above the paddle at 2 m/s, so
     # contact starts in the first step and ends inside the window; derivatives w.r.t. the initial state, the
     # action sequence and the contact smoothing. Both rows bounce; they differ in impact speed and paddle motion.
-    system = envs.make("paddle")
+    system = envs.build("paddle")
     p = system.params
     x0 = torch.tensor([[p.ball_radius + 2e-3, 0.0, -2.0, 0.3], [p.ball_radius + 4e-3, 0.01, -3.0, -0.2]], dtype=F64)
     v = 0.5 * torch.ones(30, 2, 1, dtype=F64)

@@ -68,7 +68,7 @@ def zero_torque(obs_dim: int) -> nn.Module:
 
 @pytest.fixture
 def di():
-    return envs.make("double_integrator")  # RK4: exactly the zero-order-hold model for constant acceleration
+    return envs.build("double_integrator")  # RK4: exactly the zero-order-hold model for constant acceleration
 
 
 # Half the LQR gain (stable, not optimal: dC/du_t != 0) and a gain that pushes the position away (unstable).
@@ -144,7 +144,7 @@ def test_jacobian_sigma_matches_matrix_power(di, gain):
 def test_jacobian_sigma_of_a_swinging_pendulum_matches_central_differences():
     # Along a nonlinear trajectory the step Jacobians differ from step to step, so their order in the product
     # matters; the reference is dx_t/dx_0 by central differences of apg.rollout.rollout.
-    system = envs.make("pendulum")
+    system = envs.build("pendulum")
     policy = make_policy(PolicySettings(hidden=(8,)), system, torch.Generator().manual_seed(0), dtype=F64)
     gen = torch.Generator().manual_seed(2)
     with torch.no_grad():
@@ -163,7 +163,7 @@ def test_jacobian_sigma_upright_pendulum_matches_linearisation():
     # At rest upright under zero torque the trajectory stays on the equilibrium, so dx_t/dx_0 is the RK4 step of
     # the linearisation thdd = (g/l) th - b/(m l^2) thd, close to expm(A_c t); its largest singular value grows
     # like exp(sqrt(g/l) t) (the unstable eigenvalue, from the linearisation; damping shifts it by -b/(2 m l^2)).
-    system = envs.make("pendulum")
+    system = envs.build("pendulum")
     p = system.params
     a_c = np.array([[0.0, 1.0], [p.gravity / p.length, -p.damping / (p.mass * p.length ** 2)]])
     profile = gradient_profile(system, zero_torque(system.obs_dim), torch.zeros(1, 2, dtype=F64), 100)
@@ -179,7 +179,7 @@ def test_jacobian_sigma_upright_pendulum_matches_linearisation():
 def test_exploding_pendulum_warns_and_stable_lqr_does_not(di):
     # Pendulum 1e-9 rad from upright, zero torque, 6 s: from the linearisation sigma ~ exp(sqrt(g/l) t) ~ 1e8 at
     # the end (the angle is still only ~0.1 rad), and the costate collects the late costs amplified as much.
-    pendulum = envs.make("pendulum")
+    pendulum = envs.build("pendulum")
     x0 = torch.tensor([[1e-9, 0.0], [-1e-9, 0.0]], dtype=F64)
     exploding = gradient_profile(pendulum, zero_torque(pendulum.obs_dim), x0, 120)
     assert exploding.growth > 1e3 and exploding.sigma_max > 1e3
@@ -201,7 +201,7 @@ def test_exploding_pendulum_warns_and_stable_lqr_does_not(di):
 
 
 def test_profile_leaves_policy_untouched():
-    system = envs.make("pendulum")
+    system = envs.build("pendulum")
     policy = make_policy(PolicySettings(hidden=(8,)), system, torch.Generator().manual_seed(0))
     params = list(policy.parameters())
     params[0].grad = torch.ones_like(params[0])
@@ -219,7 +219,7 @@ def test_profile_leaves_policy_untouched():
 
 def test_per_element_parameters_follow_their_rows():
     # mass enters the dynamics (and so the Jacobian), torque_limit only the running cost.
-    system = envs.make("pendulum")
+    system = envs.build("pendulum")
     policy = make_policy(PolicySettings(hidden=(8,)), system, torch.Generator().manual_seed(0), dtype=F64)
     x0 = torch.tensor([[2.0, 0.3], [-1.0, 0.5]], dtype=F64)
     values = {"mass": torch.tensor([0.5, 2.0], dtype=F64), "torque_limit": torch.tensor([1.0, 4.0], dtype=F64)}
@@ -243,7 +243,7 @@ def test_per_element_parameters_follow_their_rows():
 
 @pytest.fixture
 def profiles(di) -> tuple[GradientProfile, GradientProfile]:
-    pendulum = envs.make("pendulum")
+    pendulum = envs.build("pendulum")
     x0 = torch.tensor([[1e-9, 0.0]], dtype=F64)
     exploding = gradient_profile(pendulum, zero_torque(pendulum.obs_dim), x0, 100)
     stable = gradient_profile(di, linear_policy(lqr(di)[-1]), X0, 50)

@@ -44,7 +44,7 @@ def _free_port() -> int:
 
 
 def _problem(dtype):
-    system = envs.make("cartpole")
+    system = envs.build("cartpole")
     torch.manual_seed(0)  # the layers' initial weights come from the global generator
     policy = make_policy(PolicySettings(hidden=(16,)), system, torch.Generator().manual_seed(0), dtype=dtype)
     x0 = system.sample_initial(BATCH, torch.Generator().manual_seed(1), dtype)
@@ -57,7 +57,7 @@ def _settings(iterations):
 
 
 def _train(run_dir, iterations, resume=False, shard=None, monitors=()):
-    return train(envs.make("pendulum"), POLICY, OPTIM, Analytic(), _settings(iterations), seed=5, run_dir=run_dir,
+    return train(envs.build("pendulum"), POLICY, OPTIM, Analytic(), _settings(iterations), seed=5, run_dir=run_dir,
                  resume=resume, config={"seed": 5, "train": {"iterations": iterations}}, monitors=monitors,
                  ensemble=ENSEMBLE, shard=shard)
 

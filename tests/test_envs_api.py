@@ -23,7 +23,7 @@ POSITIVE_FIELDS = {
     "acrobot": ("link_mass_1", "com_2"),
     "quadrotor": ("mass", "arm_length"),
     "crane": ("trolley_mass", "rope_length"),
-    "hopper": ("body_mass", "leg_rest_length"),
+    "pogo": ("body_mass", "leg_rest_length"),
     "paddle": ("ball_mass", "contact_stiffness"),
 }
 
@@ -41,23 +41,23 @@ def inputs(system, n: int, dtype: torch.dtype, seed: int = 0):
 # registry
 # ---------------------------------------------------------------------------------------------------------------
 def test_available_lists_all_eight_systems():
-    assert envs.available() == ("acrobot", "cartpole", "crane", "double_integrator", "hopper", "paddle", "pendulum",
+    assert envs.available() == ("acrobot", "cartpole", "crane", "double_integrator", "paddle", "pendulum", "pogo",
                                 "quadrotor")
     for name in envs.available():
-        system = envs.make(name)
+        system = envs.build(name)
         assert system.name == name and isinstance(system, envs.System)
         assert system.integrator == "rk4" and system.dt == type(system).default_dt
 
 
 def test_make_unknown_name_lists_valid_names():
     with pytest.raises(ValueError, match="unknown system 'pendulm'") as info:
-        envs.make("pendulm")
+        envs.build("pendulm")
     for name in NAMES:
         assert name in str(info.value)
 
 
 def test_make_overrides_params_task_dt_and_integrator():
-    system = envs.make("pendulum", params={"torque_limit": 2.0}, task={"init_low": [-1.0, -0.5]}, dt=0.02,
+    system = envs.build("pendulum", params={"torque_limit": 2.0}, task={"init_low": [-1.0, -0.5]}, dt=0.02,
                        integrator="semi_implicit_euler")
     assert system.params.torque_limit == 2.0 and system.action_high == (2.0,)
     assert system.task.init_low == (-1.0, -0.5)  # a list from a config file becomes the tuple the record holds
@@ -68,7 +68,7 @@ def test_make_overrides_params_task_dt_and_integrator():
 @pytest.mark.parametrize("name", NAMES)
 def test_make_unknown_key_is_named(name, what):
     with pytest.raises(ValueError, match=rf"unknown {what} key\(s\) \['frobnicate'\]"):
-        envs.make(name, **{what: {"frobnicate": 1.0}})
+        envs.build(name, **{what: {"frobnicate": 1.0}})
 
 
 @pytest.mark.parametrize("name", NAMES)
@@ -76,7 +76,7 @@ def test_negative_or_zero_mass_is_rejected_naming_the_field(name):
     field = POSITIVE_FIELDS[name][0]
     for bad in (-1.0, 0.0):
         with pytest.raises(ValueError, match=rf"params\.{field} must be > 0"):
-            envs.make(name, params={field: bad})
+            envs.build(name, params={field: bad})
     # ... also when built from the record directly, and when one entry of a per-batch tensor is bad
     cls = envs.system_class(name)
     with pytest.raises(ValueError, match=rf"^{field} must be > 0"):
@@ -90,33 +90,33 @@ def test_negative_or_zero_mass_is_rejected_naming_the_field(name):
 def test_non_finite_parameter_is_rejected_naming_the_field(name, bad):
     field = POSITIVE_FIELDS[name][1]
     with pytest.raises(ValueError, match=rf"params\.{field} must be finite"):
-        envs.make(name, params={field: bad})
+        envs.build(name, params={field: bad})
     with pytest.raises(ValueError, match=rf"^{field} must be finite"):
         dataclasses.replace(envs.system_class(name).Params(), **{field: torch.tensor([1.0, bad])})
 
 
 def test_nonnegative_fields_accept_zero_and_reject_negative():
-    assert envs.make("pendulum", params={"damping": 0.0}).params.damping == 0.0
-    assert envs.make("crane", params={"rolling_resistance": 0.0}).params.rolling_resistance == 0.0
+    assert envs.build("pendulum", params={"damping": 0.0}).params.damping == 0.0
+    assert envs.build("crane", params={"rolling_resistance": 0.0}).params.rolling_resistance == 0.0
     with pytest.raises(ValueError, match=r"params\.damping must be >= 0"):
-        envs.make("pendulum", params={"damping": -0.1})
+        envs.build("pendulum", params={"damping": -0.1})
     with pytest.raises(ValueError, match=r"params\.rolling_resistance must be >= 0"):
-        envs.make("crane", params={"rolling_resistance": -1.0})
+        envs.build("crane", params={"rolling_resistance": -1.0})
     with pytest.raises(ValueError, match=r"task\.hold_time must be > 0"):
-        envs.make("cartpole", task={"hold_time": -1.0})
+        envs.build("cartpole", task={"hold_time": -1.0})
 
 
 @pytest.mark.parametrize("dt", [-0.1, 0.0, math.nan, math.inf])
 @pytest.mark.parametrize("name", NAMES)
 def test_bad_dt_is_rejected(name, dt):
     with pytest.raises(ValueError, match=r"^dt must be a positive number"):
-        envs.make(name, dt=dt)
+        envs.build(name, dt=dt)
 
 
 @pytest.mark.parametrize("name", NAMES)
 def test_unknown_integrator_is_rejected_listing_valid_ones(name):
     with pytest.raises(ValueError, match=r"unknown integrator 'leapfrog'") as info:
-        envs.make(name, integrator="leapfrog")
+        envs.build(name, integrator="leapfrog")
     for integrator in INTEGRATORS:
         assert integrator in str(info.value)
 
@@ -127,7 +127,7 @@ def test_wrong_record_type_is_a_type_error():
 
 
 def test_replace_returns_a_new_validated_system():
-    system = envs.make("pendulum")
+    system = envs.build("pendulum")
     other = system.replace(dt=0.01, params=dataclasses.replace(system.params, mass=2.0))
     assert other is not system and other.dt == 0.01 and other.params.mass == 2.0
     assert system.dt == 0.05 and system.params.mass == 1.0  # the original is unchanged
@@ -141,7 +141,7 @@ def test_replace_returns_a_new_validated_system():
 @pytest.mark.parametrize("integrator", INTEGRATORS)
 @pytest.mark.parametrize("name", NAMES)
 def test_methods_do_not_mutate_their_inputs(name, integrator):
-    system = envs.make(name, integrator=integrator)
+    system = envs.build(name, integrator=integrator)
     x, u = inputs(system, 4, torch.float64)
     x0, u0 = x.clone(), u.clone()
     states = torch.stack([x, system.step(x, u)])
@@ -161,7 +161,7 @@ def test_methods_do_not_mutate_their_inputs(name, integrator):
 @pytest.mark.parametrize("n", [1, 5])
 @pytest.mark.parametrize("name", NAMES)
 def test_output_shapes(name, n):
-    system = envs.make(name)
+    system = envs.build(name)
     x, u = inputs(system, n, torch.float64)
     assert system.state_dim == len(system.state) == 2 * system.n_q
     assert system.action_dim == len(system.action) == len(system.action_low) == len(system.action_high)
@@ -186,7 +186,7 @@ def test_output_shapes(name, n):
 @pytest.mark.parametrize("integrator", INTEGRATORS)
 @pytest.mark.parametrize("name", NAMES)
 def test_dtype_in_is_dtype_out(name, integrator, dtype):
-    system = envs.make(name, integrator=integrator)
+    system = envs.build(name, integrator=integrator)
     x, u = inputs(system, 3, dtype)
     assert system.sample_initial(3, torch.Generator().manual_seed(0), dtype).dtype == dtype
     for out in (system.step(x, u), system.derivative(x, u), system.observe(x), system.running_cost(x, u),
@@ -201,7 +201,7 @@ def test_dtype_in_is_dtype_out(name, integrator, dtype):
 
 @pytest.mark.parametrize("name", NAMES)
 def test_observe_maps_angles_to_sin_cos(name):
-    system = envs.make(name)
+    system = envs.build(name)
     x, _ = inputs(system, 4, torch.float64)
     obs = system.observe(x)
     j = 0
@@ -227,7 +227,7 @@ def test_observe_maps_angles_to_sin_cos(name):
 @pytest.mark.parametrize("dtype", DTYPES)
 @pytest.mark.parametrize("name", NAMES)
 def test_sample_initial_is_reproducible_and_inside_the_box(name, dtype):
-    system = envs.make(name)
+    system = envs.build(name)
     a = system.sample_initial(2000, torch.Generator().manual_seed(123), dtype)
     b = system.sample_initial(2000, torch.Generator().manual_seed(123), dtype)
     c = system.sample_initial(2000, torch.Generator().manual_seed(124), dtype)
@@ -243,7 +243,7 @@ def test_sample_initial_is_reproducible_and_inside_the_box(name, dtype):
 
 
 def test_sample_initial_follows_a_changed_task_box():
-    system = envs.make("cartpole", task={"init_low": [3.0, 3.0, 0.0, 0.0], "init_high": [3.5, 3.2, 0.1, 0.1]})
+    system = envs.build("cartpole", task={"init_low": [3.0, 3.0, 0.0, 0.0], "init_high": [3.5, 3.2, 0.1, 0.1]})
     x = system.sample_initial(100, torch.Generator().manual_seed(0))
     assert (x[:, 0] >= 3.0).all() and (x[:, 0] <= 3.5).all() and (x[:, 1] >= 3.0).all()
 
@@ -258,7 +258,7 @@ def goal_and_failure_states(system) -> tuple[list[float], list[float]]:
         return [tx, tz, 0.0, 0.0, 0.0, 0.0], [tx, tz - 1.0, 0.0, 0.0, 0.0, 0.0]  # at the hover point vs 1 m low
     if system.name == "crane":
         return [system.task.distance, 0.0, 0.0, 0.0], [0.0, 0.0, 0.0, 0.0]  # at the target vs at the start
-    if system.name == "hopper":
+    if system.name == "pogo":
         z, leg = system.params.standing_height, -system.params.leg_rest_length
         return [system.task.mark, z, 0.0, leg] + [0.0] * 4, [0.0, z, 0.0, leg] + [0.0] * 4  # at the mark vs start
     if system.name == "paddle":
@@ -274,7 +274,7 @@ def goal_and_failure_states(system) -> tuple[list[float], list[float]]:
 
 @pytest.mark.parametrize("name", NAMES)
 def test_success_is_a_bool_per_trajectory_and_means_something(name):
-    system = envs.make(name)
+    system = envs.build(name)
     good, bad = goal_and_failure_states(system)
     steps = max(60, round(2.5 / system.dt))  # longer than every task's hold time (at most 2 s)
     states = torch.tensor([good, bad], dtype=torch.float64).expand(steps + 1, 2, system.state_dim)
@@ -283,7 +283,7 @@ def test_success_is_a_bool_per_trajectory_and_means_something(name):
     assert ok.dtype == torch.bool and ok.shape == (2,)
     assert ok.tolist() == [True, False]
     # tasks with a hold time: reaching the goal only at the very last state is not holding it
-    if name in ("pendulum", "cartpole", "quadrotor", "crane", "hopper", "paddle"):
+    if name in ("pendulum", "cartpole", "quadrotor", "crane", "pogo", "paddle"):
         late = states[:, 1:].clone()
         late[-1] = torch.tensor(good, dtype=torch.float64)
         assert system.success(late, actions[:, 1:]).tolist() == [False]
@@ -292,7 +292,7 @@ def test_success_is_a_bool_per_trajectory_and_means_something(name):
 @pytest.mark.parametrize("name", NAMES)
 def test_success_uses_dt_for_the_hold_window(name):
     # final_window keeps round(seconds / dt) states (at least one): the window must scale with dt
-    system = envs.make(name)
+    system = envs.build(name)
     states = torch.zeros(max(101, round(3.0 / system.dt)), 1, system.state_dim)  # longer than 2 s
     assert system.final_window(states, 1.0).shape[0] == max(1, round(1.0 / system.dt))
     assert system.replace(dt=system.dt / 2).final_window(states, 1.0).shape[0] == max(1, round(2.0 / system.dt))

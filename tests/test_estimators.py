@@ -40,7 +40,7 @@ Z = 3.48
 
 
 def lq_problem(batch: int = 32):
-    system = envs.make("double_integrator", dt=DT)
+    system = envs.build("double_integrator", dt=DT)
     policy = Policy(LINEAR, 2, system.action_low, system.action_high).to(F64)
     with torch.no_grad():
         policy.net[0].weight.copy_(torch.tensor(K0, dtype=F64))
@@ -175,7 +175,7 @@ def test_alpha_order_reduces_to_each_end():
     """alpha = 1: the pathwise BPTT gradient of the same noisy rollouts (rebuilt here with ``rollout``);
     alpha = 0: the likelihood-ratio estimate from the same draws; in between: the affine blend of the two."""
     torch.manual_seed(0)
-    system = envs.make("pendulum")
+    system = envs.build("pendulum")
     policy = make_policy(PolicySettings(hidden=(8,)), system, dtype=F64)
     x0 = system.sample_initial(6, torch.Generator().manual_seed(1), F64)
     n, horizon = 3, 12
@@ -199,7 +199,7 @@ def test_alpha_order_reduces_to_each_end():
 def test_alpha_order_at_vanishing_noise_is_the_analytic_gradient():
     """The pathwise gradient is continuous in the noise level: at 1e-9 of the half-range it is BPTT's."""
     torch.manual_seed(0)
-    system = envs.make("cartpole")
+    system = envs.build("cartpole")
     policy = make_policy(PolicySettings(hidden=(8,)), system, dtype=F64)
     x0 = system.sample_initial(8, torch.Generator().manual_seed(1), F64)
     a1 = AlphaOrder(EstimatorSettings(name="alpha_order", alpha=1.0, action_noise=1e-9, samples=2))
@@ -214,7 +214,7 @@ def test_rank_shaping_is_invariant_to_the_cost_scale():
     weight by 1000 (so every total cost, P included, scales by 1000) leaves the shaped update unchanged and
     scales the plain one by 1000."""
     system, policy, x0 = lq_problem()
-    big = envs.make("double_integrator", dt=DT, task={"q_position": 1000.0, "q_velocity": 100.0, "r_force": 100.0})
+    big = envs.build("double_integrator", dt=DT, task={"q_position": 1000.0, "q_velocity": 100.0, "r_force": 100.0})
     for shaped in (True, False):
         es = EvolutionStrategies(EstimatorSettings(name="es", pairs=6, rank_shaping=shaped))
         g1 = flat(es.estimate(system, policy, x0, 1, torch.Generator().manual_seed(3)).grads)
@@ -261,7 +261,7 @@ def test_es_evaluates_each_perturbation_on_its_own_models():
     """With one model per batch element (an ensemble: a ``(B,)`` mass), a single antithetic pair must equal
     ``(J(theta + s e) - J(theta - s e)) e / (2 s)`` computed with two ordinary rollouts."""
     torch.manual_seed(0)
-    system = envs.make("double_integrator").replace(params=envs.system_class("double_integrator").Params(
+    system = envs.build("double_integrator").replace(params=envs.system_class("double_integrator").Params(
         mass=torch.tensor([0.5, 1.0, 2.0, 4.0], dtype=F64)))
     policy = make_policy(PolicySettings(hidden=(4,)), system, dtype=F64)
     x0 = system.sample_initial(4, torch.Generator().manual_seed(1), F64)

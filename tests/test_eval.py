@@ -34,7 +34,7 @@ SMALL_SWEEP = SweepSettings(points=5, actuator_gain=(0.7, 1.3), obs_noise=(0.0, 
 
 def _policy(system_name: str, dtype=torch.float32):
     torch.manual_seed(0)
-    system = envs.make(system_name)
+    system = envs.build(system_name)
     return system, make_policy(PolicySettings(hidden=(16,)), system, torch.Generator().manual_seed(1), dtype=dtype)
 
 
@@ -73,7 +73,7 @@ def _zoh(dt: float, m: float) -> tuple[np.ndarray, np.ndarray]:
 @pytest.mark.parametrize("delay, gain", [(0, 1.0), (1, 1.0), (2, 1.0), (1, 0.6), (0, 1.4)])
 def test_delay_and_actuator_gain_match_the_exact_linear_recursion(delay, gain):
     """Reference: x_{k+1} = A x_k + B g u_{k-d} with u = -K x, computed in numpy (RK4 is exact for this model)."""
-    system = envs.make("double_integrator", params={"mass": 2.0})
+    system = envs.build("double_integrator", params={"mass": 2.0})
     k_gain = np.array([1.5, 2.0])
     policy = lambda obs: -(obs @ torch.tensor(k_gain, dtype=obs.dtype)).unsqueeze(-1)
     x0 = system.sample_initial(5, torch.Generator().manual_seed(4), torch.float64)
@@ -90,7 +90,7 @@ def test_delay_and_actuator_gain_match_the_exact_linear_recursion(delay, gain):
 
 def test_push_is_an_exact_velocity_step_at_the_stated_time():
     """With no force, a push changes each velocity by exactly level * reference scale, once, at push_time."""
-    system = envs.make("double_integrator")
+    system = envs.build("double_integrator")
     zero = lambda obs: torch.zeros(obs.shape[0], 1, dtype=obs.dtype)
     x0 = torch.zeros(6, 2, dtype=torch.float64)
     run = simulate(system, zero, x0, 40, Disturbance(push=2.0, push_time=0.25), seed=1)
@@ -103,7 +103,7 @@ def test_push_is_an_exact_velocity_step_at_the_stated_time():
 
 def test_observation_noise_has_the_stated_standard_deviation():
     """The policy sees x + level * scale * N(0, 1); the sample std over 20,000 draws is within 3 % (chi-square)."""
-    system = envs.make("double_integrator")
+    system = envs.build("double_integrator")
     seen = []
 
     def recorder(obs):
@@ -127,7 +127,7 @@ def test_wilson_interval_matches_scipy():
 def test_metrics_on_a_trajectory_built_by_hand():
     """A pendulum that arrives upright at step 10 and stays: success is completed after hold_time = 1 s (20 steps)
     at t = 30 * dt; a second never arrives. Saturation and limit counts follow from the built actions and states."""
-    system = envs.make("pendulum")
+    system = envs.build("pendulum")
     T = 60
     states = torch.zeros(T + 1, 2, 2, dtype=torch.float64)
     states[:10, 0, 0] = 1.0  # away from upright until step 10
@@ -164,7 +164,7 @@ def test_unknown_parameter_in_the_sweep_is_named():
 @pytest.fixture(scope="module")
 def quad_run(tmp_path_factory):
     run = tmp_path_factory.mktemp("quad")
-    system = envs.make("quadrotor")
+    system = envs.build("quadrotor")
     config = {"system": {"name": "quadrotor", "ensemble": {"mass": [0.7, 0.9]}}, "train": {"horizon": 30},
               "experiment": "tiny_quad"}
     train(system, PolicySettings(hidden=(16,)), OptimSettings(), Analytic(),
@@ -221,7 +221,7 @@ def test_unreadable_sources_give_clear_errors(quad_run, tmp_path):
 
 def _cartpole_run(tmp_path: Path) -> Path:
     run = tmp_path / "cartpole"
-    train(envs.make("cartpole"), PolicySettings(hidden=(8,)), OptimSettings(), Analytic(),
+    train(envs.build("cartpole"), PolicySettings(hidden=(8,)), OptimSettings(), Analytic(),
           TrainSettings(iterations=1, batch_size=4, horizon=5, eval_batch=4, figure_every=0), seed=0, run_dir=run)
     return run
 

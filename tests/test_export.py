@@ -31,7 +31,7 @@ SYSTEMS = {"cartpole": {}, "quadrotor": {}, "crane": {}}
 
 def _train(system_name: str, run_dir: Path, settings: TrainSettings = TINY_TRAIN,
            policy: PolicySettings = PolicySettings(hidden=(16, 16)), lr: float = 3e-3, **system_kw) -> Path:
-    system = envs.make(system_name, **system_kw)
+    system = envs.build(system_name, **system_kw)
     config = {"system": {"name": system_name, "dt": system.dt, "params": system_kw.get("params", {}),
                          "task": system_kw.get("task", {})},
               "train": {"horizon": settings.horizon, "eval_horizon": settings.eval_horizon}, "seed": 0}
@@ -65,7 +65,7 @@ def test_onnx_file_matches_the_torch_policy_open_and_closed_loop(runs, tmp_path,
     assert dim.dim_param and not dim.dim_value  # a symbolic batch dimension
 
     policy, _ = load_policy(runs[name])
-    system = envs.make(name)
+    system = envs.build(name)
     sess = _session(tmp_path / "p.onnx")
     # Observations from the initial box widened fourfold: the normaliser and tanh must hold off-distribution too.
     x = system.sample_initial(3000, torch.Generator().manual_seed(5), torch.float32) * 4
@@ -97,7 +97,7 @@ def test_metadata_round_trips(runs, tmp_path):
     out = export(runs["quadrotor"], tmp_path / "q.onnx", FAST)
     meta = read_metadata(out.onnx_path)
     rebuilt = system_from_metadata(meta)
-    original = envs.make("quadrotor")
+    original = envs.build("quadrotor")
     assert rebuilt.name == original.name and rebuilt.dt == original.dt
     assert rebuilt.params == original.params and rebuilt.task == original.task
     assert [o["name"] for o in meta["observation"]] == list(original.obs_names)

@@ -57,7 +57,7 @@ def random_state(system, n: int, generator: torch.Generator) -> torch.Tensor:
 
 
 def random_inputs(name: str, integrator: str = "rk4", seed: int = 0):
-    system = envs.make(name, integrator=integrator)
+    system = envs.build(name, integrator=integrator)
     g = torch.Generator().manual_seed(seed)
     x = random_state(system, B, g)
     v = 2 * torch.rand(B, system.action_dim, generator=g, dtype=F64) - 1
@@ -86,7 +86,7 @@ PARAM_FIELDS = {
     "acrobot": "inertia_2",
     "quadrotor": "inertia",
     "crane": "load_mass",
-    "hopper": "body_mass",
+    "pogo": "body_mass",
     "paddle": "paddle_mass",
 }
 
@@ -180,7 +180,7 @@ BPTT_TOL = dict(rtol=1e-5, atol=1e-7)
 @pytest.mark.parametrize("integrator", INTEGRATORS)
 @pytest.mark.parametrize("name", NAMES)
 def test_bptt_rollout_cost_matches_finite_differences(name, integrator):
-    system = envs.make(name, integrator=integrator)
+    system = envs.build(name, integrator=integrator)
     centre, half = action_map(system)
     g = torch.Generator().manual_seed(4)
     x0 = system.sample_initial(1, g, F64)

@@ -33,7 +33,7 @@ def _flat(grads) -> torch.Tensor:
 
 def _linear_setup(batch: int = 5):
     """Double integrator (exact ZOH model under RK4), a linear policy u = W x without normaliser or squashing."""
-    system = envs.make("double_integrator")
+    system = envs.build("double_integrator")
     policy = make_policy(PolicySettings(kind="linear", normalise="none", squash="none", bias=False), system,
                          dtype=F64)
     with torch.no_grad():
@@ -55,7 +55,7 @@ def test_truncated_rollout_states_and_costs_equal_the_plain_rollout():
 def test_truncated_gradient_matches_finite_differences_window_by_window():
     """Williams & Peng (1990): the truncated gradient is the sum over windows of d(window cost)/d theta with the
     window's start state held fixed; central differences of each window's cost from its (nominal) start state."""
-    system = envs.make("pendulum")
+    system = envs.build("pendulum")
     policy = make_policy(PolicySettings(hidden=(8,), normalise="none"), system, torch.Generator().manual_seed(0),
                          dtype=F64)
     x0 = system.sample_initial(4, torch.Generator().manual_seed(1), F64)
@@ -88,7 +88,7 @@ def test_truncation_bounds_the_gradient_on_an_unstable_system():
     """The pendulum near upright under (almost) no torque diverges like exp(sqrt(g/l) t) (linearisation;
     sqrt(9.81 / 1) = 3.1 /s, so 3 s multiply a perturbation by ~1e4): the full-horizon gradient is orders of
     magnitude larger than the truncated one, whose chains span only 0.25 s."""
-    system = envs.make("pendulum", task={"init_low": (-0.05, -0.05), "init_high": (0.05, 0.05)})
+    system = envs.build("pendulum", task={"init_low": (-0.05, -0.05), "init_high": (0.05, 0.05)})
     policy = make_policy(PolicySettings(hidden=(8,), normalise="none", output_gain=1e-3), system,
                          torch.Generator().manual_seed(0), dtype=F64)
     x0 = system.sample_initial(8, torch.Generator().manual_seed(2), F64)
@@ -145,7 +145,7 @@ def test_terminal_value_with_the_true_cost_to_go_gives_the_exact_gradient():
 
 def test_fitted_value_explains_the_cost_to_go():
     """After fitting on a batch of rollouts the value predicts held-out cost-to-go (R^2 > 0.9; a learning check)."""
-    system = envs.make("pendulum")
+    system = envs.build("pendulum")
     policy = make_policy(PolicySettings(hidden=(16,)), system, torch.Generator().manual_seed(0), dtype=F64)
     est = TerminalValue(EstimatorSettings(name="terminal_value", window=10, critic_iterations=300, critic_lr=3e-3))
     gen = torch.Generator().manual_seed(0)
@@ -159,7 +159,7 @@ def test_fitted_value_explains_the_cost_to_go():
 
 
 def test_terminal_value_state_round_trips():
-    system = envs.make("pendulum")
+    system = envs.build("pendulum")
     policy = make_policy(PolicySettings(hidden=(8,)), system, torch.Generator().manual_seed(0))
     a = TerminalValue(EstimatorSettings(name="terminal_value", window=5))
     x0 = system.sample_initial(16, torch.Generator().manual_seed(0))
@@ -181,7 +181,7 @@ def _train(tmp_path, estimator=None, resume=False, **settings):
                                 checkpoint_every=3, dtype="float64", diagnose_every=0), **settings})
     config = {"seed": 1, "train": dataclasses.asdict(s)}
     optim = OptimSettings(lr=1e-2, schedule="constant")
-    return train(envs.make("pendulum"), PolicySettings(hidden=(16,)), optim,
+    return train(envs.build("pendulum"), PolicySettings(hidden=(16,)), optim,
                  estimator or make_estimator(EstimatorSettings(name="terminal_value", window=5)), s, seed=1,
                  run_dir=tmp_path, resume=resume, config=config)
 
@@ -221,13 +221,13 @@ def test_horizon_schedule_grows_linearly_and_counts_its_steps(tmp_path):
 
 
 def test_contact_smoothing_continuation_is_geometric(tmp_path):
-    hopper = envs.make("hopper")
-    final = hopper.params.contact_smoothing
+    pogo = envs.build("pogo")
+    final = pogo.params.contact_smoothing
     spy = _Spy()
     s = TrainSettings(iterations=4, batch_size=4, horizon=5, eval_every=4, eval_batch=4, figure_every=0,
                       checkpoint_every=4, diagnose_every=0, continuation_param="contact_smoothing",
                       continuation_start=100 * final, ramp_fraction=1.0)
-    train(hopper, PolicySettings(hidden=(8,)), OptimSettings(), spy, s, seed=0, run_dir=tmp_path)
+    train(pogo, PolicySettings(hidden=(8,)), OptimSettings(), spy, s, seed=0, run_dir=tmp_path)
     got = [w for _, w in spy.seen]
     want = [100 * final * 0.01 ** (i / 4) for i in range(4)]  # start * (final / start)^(it / iterations)
     assert got == pytest.approx(want, rel=1e-12)
@@ -242,5 +242,5 @@ def test_contact_smoothing_continuation_is_geometric(tmp_path):
 def test_schedule_settings_are_checked(tmp_path, changes, match):
     with pytest.raises(ValueError, match=match):
         s = TrainSettings(**{**dict(iterations=2, batch_size=4, horizon=20, eval_batch=4, diagnose_every=0), **changes})
-        train(envs.make("hopper"), PolicySettings(hidden=(8,)), OptimSettings(), Analytic(), s, seed=0,
+        train(envs.build("pogo"), PolicySettings(hidden=(8,)), OptimSettings(), Analytic(), s, seed=0,
               run_dir=tmp_path)

@@ -495,7 +495,7 @@ B = 3
 @pytest.mark.parametrize("integrator", ["rk4", "semi_implicit_euler"])
 @pytest.mark.parametrize("name", envs.available())
 def test_per_batch_parameters_step_like_separate_systems(name, integrator, dtype):
-    base = envs.make(name, integrator=integrator)
+    base = envs.build(name, integrator=integrator)
     fields = [f.name for f in dataclasses.fields(base.params)]
     # every numeric field gets a different value per row (and per field), 7% to 30% away from the default
     values = {f: [float(getattr(base.params, f)) * (1.0 + 0.07 * (i + 1) + 0.01 * j) for i in range(B)]

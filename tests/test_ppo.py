@@ -52,7 +52,7 @@ def test_ppo_learns_to_balance_the_cartpole(tmp_path, seed):
     """A real learning check, loose on purpose: 20 iterations of 32 rollouts x 60 steps (38,400 simulator steps)
     must cut the held-out cost to a quarter of the initial policy's. Measured: to 2-7 % of it (~1.6 s a seed)."""
     evals = _Evals()
-    result = train_ppo(envs.make("cartpole"), SMALL, OptimSettings(lr=3e-3, schedule="constant"),
+    result = train_ppo(envs.build("cartpole"), SMALL, OptimSettings(lr=3e-3, schedule="constant"),
                        PPOSettings(epochs=5, minibatches=4),
                        TrainSettings(iterations=20, batch_size=32, horizon=60, eval_every=20, eval_batch=128,
                                      grad_clip=0.5, figure_every=0),
@@ -63,7 +63,7 @@ def test_ppo_learns_to_balance_the_cartpole(tmp_path, seed):
 
 def test_ppo_starts_from_the_trainers_initial_policy_and_respects_the_step_budget(tmp_path):
     """Races compare methods from the same start: PPO's iteration-0 held-out cost equals the trainer's."""
-    system = envs.make("pendulum")
+    system = envs.build("pendulum")
     settings = TrainSettings(iterations=50, batch_size=8, horizon=10, eval_every=50, eval_batch=16, figure_every=0,
                              max_env_steps=200)
     ppo, bptt = _Evals(), _Evals()
@@ -81,12 +81,12 @@ def test_ppo_starts_from_the_trainers_initial_policy_and_respects_the_step_budge
 def test_bad_ppo_settings_are_named():
     with pytest.raises(ValueError, match="gamma must be in"):
         PPOSettings(gamma=1.5)
-    with pytest.raises(ValueError, match="clip must be > 0"):
-        PPOSettings(clip=0.0)
+    with pytest.raises(ValueError, match="clip_ratio must be > 0"):
+        PPOSettings(clip_ratio=0.0)
 
 
 def test_ppo_refuses_the_gradient_trainers_schedules(tmp_path):
     settings = TrainSettings(iterations=2, batch_size=4, horizon=10, eval_batch=4, horizon_start=5)
     with pytest.raises(ValueError, match="horizon_start"):
-        train_ppo(envs.make("pendulum"), SMALL, OptimSettings(), PPOSettings(), settings, seed=0, run_dir=tmp_path)
+        train_ppo(envs.build("pendulum"), SMALL, OptimSettings(), PPOSettings(), settings, seed=0, run_dir=tmp_path)
     assert not (tmp_path / "checkpoint.pt").exists()

@@ -26,7 +26,7 @@ def test_linear_policy_converges_to_discrete_lqr_gain(tmp_path):
     The terminal cost x'Px with P from the DARE makes the finite-horizon optimum the stationary LQR policy
     for every initial state, so the minibatch gradient vanishes exactly at K* and the fit can be tight.
     """
-    system = envs.make("double_integrator", dt=0.1)
+    system = envs.build("double_integrator", dt=0.1)
     a = np.array([[1.0, 0.1], [0.0, 1.0]])
     b = np.array([[0.1 ** 2 / 2], [0.1]])  # zero-order hold of xdd = u/m with m = 1 kg
     q, r = np.diag([1.0, 0.1]), np.array([[0.1]])
@@ -44,7 +44,7 @@ def test_linear_policy_converges_to_discrete_lqr_gain(tmp_path):
 def test_bptt_gradient_matches_central_differences():
     """The analytic estimator's gradient equals central finite differences of the same objective (float64)."""
     torch.manual_seed(0)
-    system = envs.make("cartpole")
+    system = envs.build("cartpole")
     policy = make_policy(PolicySettings(hidden=(8,)), system, dtype=torch.float64)
     x0 = system.sample_initial(16, torch.Generator().manual_seed(1), torch.float64)
     est = Analytic().estimate(system, policy, x0, 30, torch.Generator())
@@ -74,7 +74,7 @@ def _settings(**kw):
 
 def _train(run_dir, settings, resume=False, monitors=(), seed=3, policy=PolicySettings(hidden=(16,),
                                                                                     normalise="running")):
-    return train(envs.make("pendulum"), policy, OptimSettings(lr=1e-2), Analytic(), settings, seed=seed,
+    return train(envs.build("pendulum"), policy, OptimSettings(lr=1e-2), Analytic(), settings, seed=seed,
                  run_dir=run_dir, resume=resume, config={"seed": seed, "train": {"iterations": settings.iterations}},
                  monitors=monitors)
 
@@ -131,7 +131,7 @@ def test_resume_with_different_settings_names_the_key(tmp_path):
 
 
 def test_non_finite_rollout_stops_with_iteration_and_keeps_last_checkpoint(tmp_path):
-    system = envs.make("double_integrator")
+    system = envs.build("double_integrator")
     with pytest.raises(NonFiniteError, match=r"iteration \d+.*optim.lr.*system.dt") as err:
         train(system, LINEAR, OptimSettings(name="sgd", lr=1e4, schedule="constant"), Analytic(),
               TrainSettings(iterations=50, batch_size=8, horizon=50, grad_clip=0.0, checkpoint_every=1, **QUIET),
@@ -160,11 +160,11 @@ def test_metrics_file_has_the_documented_keys(tmp_path):
 
 def test_load_policy_rebuilds_the_trained_policy(tmp_path):
     result = _train(tmp_path, _settings())
-    policy, state = load_policy(tmp_path, envs.make("pendulum"))
+    policy, state = load_policy(tmp_path, envs.build("pendulum"))
     obs = torch.randn(5, 3)
     torch.testing.assert_close(policy(obs), result.policy(obs), rtol=0, atol=0)
     with pytest.raises(ValueError, match="does not match"):
-        load_policy(tmp_path, envs.make("cartpole"))
+        load_policy(tmp_path, envs.build("cartpole"))
 
 
 def test_corrupt_checkpoint_is_a_clear_error(tmp_path):
@@ -184,7 +184,7 @@ def test_running_normaliser_matches_pooled_statistics():
 
 
 def test_squashed_actions_respect_the_system_limits():
-    system = envs.make("quadrotor")
+    system = envs.build("quadrotor")
     policy = make_policy(PolicySettings(output_gain=50.0), system)
     u = policy(system.observe(system.sample_initial(256, torch.Generator().manual_seed(0)) * 10))
     assert (u >= 0).all() and (u <= system.params.thrust_limit).all()
@@ -211,7 +211,7 @@ def test_bad_settings_are_named():
 def test_ensemble_draws_one_model_per_batch_element_inside_the_ranges():
     from apg.ensemble import ParameterRanges
 
-    system = envs.make("crane")
+    system = envs.build("crane")
     ranges = ParameterRanges.from_mapping({"load_mass": [8000.0, 12000.0], "rope_length": [6.0, 10.0]})
     models = ranges.sample(system, 256, torch.Generator().manual_seed(0), torch.float64)
     for name, low, high in ranges.ranges:
@@ -232,7 +232,7 @@ def test_ensemble_training_resumes_exactly(tmp_path):
     ranges = ParameterRanges.from_mapping({"mass": [0.8, 1.2], "length": [0.9, 1.1]})
 
     def run(d, resume=False, monitors=()):
-        return train(envs.make("pendulum"), PolicySettings(hidden=(16,)), OptimSettings(lr=1e-2), Analytic(),
+        return train(envs.build("pendulum"), PolicySettings(hidden=(16,)), OptimSettings(lr=1e-2), Analytic(),
                      _settings(), seed=0, run_dir=d, resume=resume, monitors=monitors, ensemble=ranges)
 
     straight = run(tmp_path / "a")

@@ -102,7 +102,7 @@ def build(cfg: DictConfig | dict) -> CompareSpec:
         raise ValueError("system.ensemble is not supported by apg-compare: the race compares estimators on the "
                          "nominal model; remove system.ensemble")
     try:
-        system = envs.make(sysc["name"], params=sysc.get("params"), task=sysc.get("task"), dt=sysc.get("dt"),
+        system = envs.build(sysc["name"], params=sysc.get("params"), task=sysc.get("task"), dt=sysc.get("dt"),
                            integrator=sysc.get("integrator", "rk4"))
     except ValueError as e:
         raise ValueError(f"system: {e}") from None

@@ -1,4 +1,4 @@
-"""One-legged hopper: a body on a springy telescopic leg that must hop along the floor to a painted mark.
+"""One-legged pogo robot: a body on a springy telescopic leg that must hop along the floor to a painted mark.
 
 Two point masses in the vertical plane: the body ``M`` at ``(x, z)`` and the foot ``m`` at ``(x + fx, z + fz)``
 (the state stores the foot relative to the body, so ``fz ~ -leg length``). The leg between them is massless:
@@ -43,7 +43,7 @@ from envs.contact import friction_force, normal_force
 
 
 @dataclass(frozen=True)
-class HopperParams:
+class PogoParams:
     body_mass: float = unit("kg", 1.5)
     foot_mass: float = unit("kg", 0.5)
     leg_rest_length: float = unit("m", 0.5)
@@ -74,7 +74,7 @@ class HopperParams:
 
 
 @dataclass(frozen=True)
-class HopperTask:
+class PogoTask:
     mark: float = unit("m", 1.0)  # where the body must end up
     w_position: float = unit("1/m^2", 1.0)
     w_sag: float = unit("1/m^2", 20.0)  # on max(standing height - z, 0)^2: crouching or fallen; hopping is free
@@ -96,14 +96,14 @@ class HopperTask:
                      nonnegative=("w_position", "w_sag", "w_lean", "w_velocity", "w_effort"))
 
 
-class Hopper(System):
-    name = "hopper"
+class Pogo(System):
+    name = "pogo"
     state = (Quantity("x", "m"), Quantity("z", "m"), Quantity("foot_dx", "m"), Quantity("foot_dz", "m"),
              Quantity("x_velocity", "m/s"), Quantity("z_velocity", "m/s"), Quantity("foot_dx_rate", "m/s"),
              Quantity("foot_dz_rate", "m/s"))
     action = (Quantity("leg_thrust", "N"), Quantity("swing_force", "N"))
-    Params = HopperParams
-    Task = HopperTask
+    Params = PogoParams
+    Task = PogoTask
     default_dt = 0.003
 
     @property
