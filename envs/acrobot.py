@@ -12,11 +12,13 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
+from typing import Sequence
 
 import torch
 from torch import Tensor
 
-from envs.base import Quantity, System, check_record, unit
+from envs.base import Quantity, System, check_record, scalar, unit
+from envs.sketch import Disc, Segment, Trace, Twist
 
 
 @dataclass(frozen=True)
@@ -57,6 +59,7 @@ class Acrobot(System):
     Params = AcrobotParams
     Task = AcrobotTask
     default_dt = 0.05
+    robustness_params = ("link_mass_1", "link_mass_2", "link_length_1", "link_length_2")  # not gravity or limits
 
     @property
     def action_bound(self) -> tuple[float, ...]:
@@ -102,3 +105,23 @@ class Acrobot(System):
     @property
     def success_criterion(self) -> str:
         return f"tip rises more than {self.task.goal_height} m above the shoulder within the horizon"
+
+    # ---- deployment facts ---------------------------------------------------------------------------------
+    @property
+    def state_limits(self) -> dict[str, tuple[float, float]]:
+        """The velocity bounds of Sutton and Barto's acrobot (1998, sec. 11.3):
+        4 pi rad/s at the shoulder and 9 pi rad/s at the elbow."""
+        return {"shoulder_velocity": (-4 * math.pi, 4 * math.pi), "elbow_velocity": (-9 * math.pi, 9 * math.pi)}
+
+    def sketch(self, x: Sequence[float]) -> list:
+        l1, l2 = scalar(self.params.link_length_1), scalar(self.params.link_length_2)
+        goal, reach = self.task.goal_height, l1 + l2
+        elbow = (l1 * math.sin(x[0]), -l1 * math.cos(x[0]))
+        tip = (elbow[0] + l2 * math.sin(x[0] + x[1]), elbow[1] - l2 * math.cos(x[0] + x[1]))
+        return [Segment((-reach, goal), (reach, goal), 0.017, "goal", dashed=True), Trace(tip),
+                Segment((0.0, 0.0), elbow, 0.045), Segment(elbow, tip, 0.045), Disc((0.0, 0.0), 0.05, "hollow"),
+                Disc(elbow, 0.05, "accent"), Twist(elbow, 0.25, 0)]
+
+    def sketch_bounds(self, states: Sequence[Sequence[float]]) -> tuple[float, float, float, float]:
+        r = 1.15 * (scalar(self.params.link_length_1) + scalar(self.params.link_length_2))
+        return (-r, r, -r, r)

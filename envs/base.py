@@ -12,12 +12,13 @@ import abc
 import dataclasses
 import math
 from dataclasses import dataclass
-from typing import Any, ClassVar, Mapping
+from typing import Any, ClassVar, Mapping, Sequence
 
 import torch
 from torch import Tensor
 
 from envs.integrators import INTEGRATORS, integrator_step
+from envs.sketch import Primitive, extent
 
 
 @dataclass(frozen=True)
@@ -113,6 +114,15 @@ class System(abc.ABC):
 
     Parameters live in ``self.params`` (a frozen record of the subclass's ``Params`` type); any field may be a
     tensor of shape ``(B,)`` to simulate a different model per batch element.
+
+    What deployment tools need to know about a system lives on it too, so adding a system is one module:
+
+    * ``state_limits``: ``{state name: (low, high)}`` in the state's unit, the envelope whose violation
+      apg-eval counts (where the task sets it, derived from the task);
+    * ``robustness_params``: the ``Params`` fields a robustness sweep varies by default (model error a real
+      machine has: masses, lengths, stiffnesses; not gravity or actuator limits);
+    * ``sketch(x)`` and ``sketch_bounds(states)``: the machine's shape for one state as the plain records of
+      :mod:`envs.sketch` (metres), and the view that holds a whole episode.
     """
 
     name: ClassVar[str]
@@ -121,6 +131,7 @@ class System(abc.ABC):
     Params: ClassVar[type]
     Task: ClassVar[type]
     default_dt: ClassVar[float]
+    robustness_params: ClassVar[tuple[str, ...]]
 
     def __init__(self, params: object | None = None, task: object | None = None, dt: float | None = None,
                  integrator: str = "rk4") -> None:
@@ -233,3 +244,33 @@ class System(abc.ABC):
     def success_criterion(self) -> str:
         """One sentence saying what ``success`` checks, for reports."""
         return ""
+
+    # ---- deployment facts -------------------------------------------------------------------------------
+    @property
+    @abc.abstractmethod
+    def state_limits(self) -> dict[str, tuple[float, float]]:
+        """State limits counted as violations, ``{state name: (low, high)}`` in the state's unit (angles are
+        compared wrapped to (-pi, pi]); each system says where its numbers come from."""
+
+    @abc.abstractmethod
+    def sketch(self, x: Sequence[float]) -> list[Primitive]:
+        """The machine and its scenery in state ``x`` ``(state_dim,)``, as :mod:`envs.sketch` records in metres.
+
+        Tensor-valued (per-batch) parameters are drawn at their mean (:func:`scalar`).
+        """
+
+    def sketch_bounds(self, states: Sequence[Sequence[float]]) -> tuple[float, float, float, float]:
+        """The view ``(x_low, x_high, y_low, y_high)`` (m) for an episode of ``states`` ``(T+1, state_dim)``.
+
+        By default every sketch of the episode plus a 10 % margin; systems override it for a steadier view.
+        """
+        x0, x1, y0, y1 = extent(p for x in states for p in self.sketch(x))
+        mx, my = 0.1 * max(x1 - x0, 1e-3), 0.1 * max(y1 - y0, 1e-3)
+        return (x0 - mx, x1 + mx, y0 - my, y1 + my)
+
+
+def scalar(v: object) -> float:
+    """A parameter as one number: a per-batch tensor is drawn (and sized) at its mean."""
+    if isinstance(v, Tensor):
+        return float(v.detach().double().mean())
+    return float(v)  # type: ignore[arg-type]

@@ -8,12 +8,15 @@ Two tasks share this model: balance from near upright, and swing up from hanging
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
+from typing import Sequence
 
 import torch
 from torch import Tensor
 
-from envs.base import Quantity, System, check_record, unit, wrap_angle
+from envs.base import Quantity, System, check_record, scalar, unit, wrap_angle
+from envs.sketch import Box, Disc, Ground, Push, Segment, Trace
 
 
 @dataclass(frozen=True)
@@ -55,6 +58,7 @@ class CartPole(System):
     Params = CartPoleParams
     Task = CartPoleTask
     default_dt = 0.05
+    robustness_params = ("cart_mass", "pole_mass", "half_length")  # model error; not gravity or limits
 
     @property
     def action_bound(self) -> tuple[float, ...]:
@@ -95,3 +99,26 @@ class CartPole(System):
         return (f"cart stays within |x| < {t.track_limit} m; |pole angle| < {t.angle_tolerance} rad and "
                 f"|x| < {t.position_tolerance} m for the last {t.hold_time} s")
 
+    # ---- deployment facts ---------------------------------------------------------------------------------
+    @property
+    def state_limits(self) -> dict[str, tuple[float, float]]:
+        """The task's track, ``|x| < track_limit`` (2.4 m by default, as in Barto, Sutton and Anderson 1983)."""
+        t = self.task
+        return {"cart_position": (-t.track_limit, t.track_limit)}
+
+    def sketch(self, x: Sequence[float]) -> list:
+        pole = 2 * scalar(self.params.half_length)
+        w, h = 0.5, 0.25  # the cart's size is drawn, not simulated
+        limit = self.task.track_limit
+        floor = -h / 2 - 0.05
+        cx = x[0]
+        tip = (cx + pole * math.sin(x[1]), pole * math.cos(x[1]))
+        return [Ground(-limit - 0.4, limit + 0.4, floor),
+                *(Segment((edge, floor), (edge, h), 0.012, "limit", dashed=True) for edge in (-limit, limit)),
+                Segment((0.0, floor), (0.0, floor - 0.07), 0.03, "goal"), Trace(tip),
+                Box((cx, 0.0), w, h), Segment((cx, 0.0), tip, 0.045), Disc((cx, 0.0), 0.04),
+                Push((cx, 0.0), (1.0, 0.0), 0.8, 0, clearance=w / 2)]
+
+    def sketch_bounds(self, states: Sequence[Sequence[float]]) -> tuple[float, float, float, float]:
+        lim = self.task.track_limit + 0.5
+        return (-lim, lim, -0.6, 2 * scalar(self.params.half_length) + 0.4)

@@ -13,12 +13,15 @@ an 8 m hoist, moved 10 m along the rail.
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
+from typing import Sequence
 
 import torch
 from torch import Tensor
 
-from envs.base import Quantity, System, check_record, unit
+from envs.base import Quantity, System, check_record, scalar, unit
+from envs.sketch import Box, Ground, Polygon, Push, Segment, Trace
 
 
 @dataclass(frozen=True)
@@ -62,6 +65,7 @@ class Crane(System):
     Params = CraneParams
     Task = CraneTask
     default_dt = 0.1
+    robustness_params = ("load_mass", "rope_length", "trolley_mass", "rolling_resistance")  # not gravity or limits
 
     @property
     def action_bound(self) -> tuple[float, ...]:
@@ -104,3 +108,27 @@ class Crane(System):
         t = self.task
         return (f"trolley within {t.position_tolerance} m of {t.distance} m and sway below {t.sway_tolerance} rad "
                 f"for the last {t.hold_time} s")
+
+    # ---- deployment facts ---------------------------------------------------------------------------------
+    @property
+    def state_limits(self) -> dict[str, tuple[float, float]]:
+        """The envelope of the Brackwater Quay yard (invented, as the crane is): the trolley within 2 m beyond
+        the start and the target, the load within 0.3 rad (2.4 m at 8 m) of hanging."""
+        return {"trolley_position": (-2.0, self.task.distance + 2.0), "sway_angle": (-0.3, 0.3)}
+
+    def sketch(self, x: Sequence[float]) -> list:
+        rope, d = scalar(self.params.rope_length), self.task.distance
+        floor = -rope - 2.5
+        tx = x[0]
+        load = (tx + rope * math.sin(x[1]), -rope * math.cos(x[1]))
+        corrugations = [Segment((load[0] - 1.2 + 0.4 * k, load[1] - 1.1), (load[0] - 1.2 + 0.4 * k, load[1] - 0.1),
+                                0.026, "detail") for k in range(1, 6)]  # a container, not a block
+        return [Segment((-2.5, 0.3), (d + 2.5, 0.3), 0.15),  # the rail
+                *(Segment((post, 0.3), (post, floor), 0.11, "support") for post in (-2.5, d + 2.5)),
+                Ground(-2.5, d + 2.5, floor), Polygon(((d - 0.4, floor), (d + 0.4, floor), (d, floor + 0.6))),
+                Trace(load), Box((tx, 0.3), 1.6, 0.5), Segment((tx, 0.05), load, 0.045),
+                Box((load[0], load[1] - 0.6), 2.4, 1.2, role="body"), *corrugations,
+                Push((tx, 0.3), (1.0, 0.0), 3.0, 0, clearance=0.8)]
+
+    def sketch_bounds(self, states: Sequence[Sequence[float]]) -> tuple[float, float, float, float]:
+        return (-3.0, self.task.distance + 3.0, -scalar(self.params.rope_length) - 3.0, 1.5)

@@ -12,6 +12,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 from functools import cached_property
+from typing import Sequence
 
 import numpy as np
 import scipy.linalg
@@ -19,6 +20,7 @@ import torch
 from torch import Tensor
 
 from envs.base import Quantity, System, check_record, unit
+from envs.sketch import Box, Ground, Push, Segment
 
 
 @dataclass(frozen=True)
@@ -50,6 +52,7 @@ class DoubleIntegrator(System):
     Params = DoubleIntegratorParams
     Task = DoubleIntegratorTask
     default_dt = 0.1
+    robustness_params = ("mass",)  # the only physical parameter besides the force limit
 
     @property
     def action_bound(self) -> tuple[float, ...]:
@@ -94,3 +97,17 @@ class DoubleIntegrator(System):
     @property
     def success_criterion(self) -> str:
         return f"final |position| < {self.task.tolerance} m and |velocity| < {self.task.tolerance} m/s"
+
+    # ---- deployment facts ---------------------------------------------------------------------------------
+    @property
+    def state_limits(self) -> dict[str, tuple[float, float]]:
+        """A 10 m test track, ``|position| <= 5 m``: over twice the initial box, so only a wild policy leaves."""
+        return {"position": (-5.0, 5.0)}
+
+    def sketch(self, x: Sequence[float]) -> list:
+        return [Ground(-3.0, 3.0, -0.15), Segment((0.0, -0.15), (0.0, -0.3), 0.03, "goal"),
+                Box((x[0], 0.0), 0.4, 0.3), Push((x[0], 0.0), (1.0, 0.0), 1.0, 0, clearance=0.2)]
+
+    def sketch_bounds(self, states: Sequence[Sequence[float]]) -> tuple[float, float, float, float]:
+        lim = max(3.0, max(abs(s[0]) for s in states) + 0.5)
+        return (-lim, lim, -1.0, 1.0)

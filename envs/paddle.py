@@ -23,12 +23,15 @@ per cent of the closed-form restitution for both (tested).
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
+from typing import Sequence
 
 import torch
 from torch import Tensor
 
-from envs.base import Quantity, System, check_record, unit
+from envs.base import Quantity, System, check_record, scalar, unit
+from envs.sketch import Box, Disc, Ground, Push, Segment, Trace
 from envs.contact import kelvin_voigt_restitution, normal_force
 
 
@@ -93,6 +96,9 @@ class Paddle(System):
     Params = PaddleParams
     Task = PaddleTask
     default_dt = 0.004
+    # Model error of the exhibit: both masses, and the ball's stiffness and damping, which with the masses set the
+    # restitution (envs.contact.kelvin_voigt_restitution); the guide's friction; not gravity, size or the force limit.
+    robustness_params = ("ball_mass", "paddle_mass", "contact_stiffness", "contact_damping", "guide_friction")
 
     @property
     def action_bound(self) -> tuple[float, ...]:
@@ -147,3 +153,23 @@ class Paddle(System):
         return (f"over the last {t.hold_time} s the ball flies at least {t.min_flight_fraction:.0%} of the time, "
                 f"every in-flight apex within {t.apex_tolerance} m of {t.target} m, the paddle within "
                 f"{t.paddle_travel} m of home")
+
+    # ---- deployment facts ---------------------------------------------------------------------------------
+    @property
+    def state_limits(self) -> dict[str, tuple[float, float]]:
+        """The Larkspur exhibit's envelope (invented, as the exhibit is): the paddle within its motor's stroke of
+        0.3 m either side of home, and the ball below the top of its clear tube, twice the target height."""
+        return {"paddle_height": (-0.3, 0.3), "ball_height": (-math.inf, 2 * self.task.target)}
+
+    def sketch(self, x: Sequence[float]) -> list:
+        ball, paddle, target = x[0], x[1], self.task.target
+        stroke = self.state_limits["paddle_height"]
+        return [Ground(-0.4, 0.4, stroke[0] - 0.15), Segment((-0.3, target), (0.3, target), 0.008, "goal", dashed=True),
+                *(Segment((-0.2, y), (0.2, y), 0.006, "limit", dashed=True) for y in stroke),
+                Segment((0.0, stroke[0] - 0.15), (0.0, paddle - 0.02), 0.03, "support"),  # the motor's rod
+                Box((0.0, paddle - 0.01), 0.3, 0.02, role="body"), Trace((0.0, ball)),
+                Disc((0.0, ball), scalar(self.params.ball_radius)), Push((0.25, paddle), (0.0, 1.0), 0.3, 0)]
+
+    def sketch_bounds(self, states: Sequence[Sequence[float]]) -> tuple[float, float, float, float]:
+        top = max(max(s[0] for s in states) + scalar(self.params.ball_radius), self.task.target) + 0.15
+        return (-0.6, 0.6, self.state_limits["paddle_height"][0] - 0.25, top)

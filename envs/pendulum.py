@@ -9,11 +9,13 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
+from typing import Sequence
 
 import torch
 from torch import Tensor
 
-from envs.base import Quantity, System, check_record, unit, wrap_angle
+from envs.base import Quantity, System, check_record, scalar, unit, wrap_angle
+from envs.sketch import Disc, Segment, Trace, Twist
 
 
 @dataclass(frozen=True)
@@ -51,6 +53,7 @@ class Pendulum(System):
     Params = PendulumParams
     Task = PendulumTask
     default_dt = 0.05
+    robustness_params = ("mass", "length", "damping")  # model error of a real pendulum; not gravity or limits
 
     @property
     def action_bound(self) -> tuple[float, ...]:
@@ -87,3 +90,21 @@ class Pendulum(System):
         t = self.task
         return (f"|angle from upright| < {t.angle_tolerance} rad and |angular velocity| < {t.velocity_tolerance} rad/s "
                 f"for the last {t.hold_time} s")
+
+    # ---- deployment facts ---------------------------------------------------------------------------------
+    @property
+    def state_limits(self) -> dict[str, tuple[float, float]]:
+        """No faster than 8 rad/s, the envelope of a sensible machine: falling from rest upright reaches
+        ``2 sqrt(g / l)`` = 6.3 rad/s at the default length, so a policy that needs more is whirling the mass."""
+        return {"angular_velocity": (-8.0, 8.0)}
+
+    def sketch(self, x: Sequence[float]) -> list:
+        length = scalar(self.params.length)
+        tip = (length * math.sin(x[0]), length * math.cos(x[0]))
+        return [Disc((0.0, length), 0.06 * length, "goal", filled=False, dashed=True), Trace(tip),
+                Segment((0.0, 0.0), tip, 0.02 * length), Disc(tip, 0.09 * length),
+                Disc((0.0, 0.0), 0.04 * length, "hollow"), Twist((0.0, 0.0), 0.25 * length, 0)]
+
+    def sketch_bounds(self, states: Sequence[Sequence[float]]) -> tuple[float, float, float, float]:
+        r = 1.25 * scalar(self.params.length)  # the whole circle, so the view does not follow the swing
+        return (-r, r, -r, r)

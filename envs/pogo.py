@@ -33,12 +33,15 @@ Euler (bounded by the friction cone). A sharper friction (smaller ``friction_smo
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
+from typing import Sequence
 
 import torch
 from torch import Tensor
 
-from envs.base import Quantity, System, check_record, unit
+from envs.base import Quantity, System, check_record, scalar, unit
+from envs.sketch import Box, Disc, Ground, Push, Segment, Trace
 from envs.contact import friction_force, normal_force
 
 
@@ -105,6 +108,9 @@ class Pogo(System):
     Params = PogoParams
     Task = PogoTask
     default_dt = 0.003
+    # Model error of the machine and its mat: the masses, the leg spring, and the mat's damping and friction, which
+    # set how dead a landing is and how well the foot grips; not gravity, geometry or actuator limits.
+    robustness_params = ("body_mass", "foot_mass", "leg_stiffness", "contact_damping", "friction_coefficient")
 
     @property
     def action_bound(self) -> tuple[float, ...]:
@@ -169,3 +175,28 @@ class Pogo(System):
         t = self.task
         return (f"body within {t.position_tolerance} m of the mark at {t.mark} m and higher than {t.min_height} m "
                 f"for the last {t.hold_time} s")
+
+    # ---- deployment facts ---------------------------------------------------------------------------------
+    @property
+    def state_limits(self) -> dict[str, tuple[float, float]]:
+        """The envelope of the Larkspur robot (invented, as the robot is): the body on its mat, which runs 1 m
+        beyond the start spot and the mark; never lower than the task's ``min_height`` (below it the robot has
+        fallen, the failure the task guards against); the foot no more than half a rest length to either side of
+        the body (a lean of 30 degrees, the swing joint's travel)."""
+        t, half = self.task, 0.5 * scalar(self.params.leg_rest_length)
+        return {"x": (-1.0, t.mark + 1.0), "z": (t.min_height, math.inf), "foot_dx": (-half, half)}
+
+    def sketch(self, x: Sequence[float]) -> list:
+        t, radius = self.task, scalar(self.params.body_radius)
+        body, foot = (x[0], x[1]), (x[0] + x[2], x[1] + x[3])
+        length = max(math.hypot(x[2], x[3]), 1e-9)
+        n = (-x[2] / length, -x[3] / length)  # unit vector from foot to body
+        mid = (0.5 * (body[0] + foot[0]), 0.5 * (body[1] + foot[1]))
+        return [Ground(-1.2, t.mark + 1.2, 0.0), Box((t.mark, 0.006), 2 * t.position_tolerance, 0.012, role="goal"),
+                Trace(body), Segment(mid, foot, 0.014), Segment(body, mid, 0.03), Disc(foot, 0.022),
+                Disc(body, radius), Push(body, n, 0.25, 0, clearance=radius),
+                Push(body, (n[1], -n[0]), 0.2, 1, clearance=radius)]
+
+    def sketch_bounds(self, states: Sequence[Sequence[float]]) -> tuple[float, float, float, float]:
+        xs, zs = [s[0] for s in states], [s[1] for s in states]
+        return (min(-0.6, min(xs) - 0.4), max(self.task.mark + 0.6, max(xs) + 0.4), -0.15, max(0.8, max(zs) + 0.3))

@@ -9,12 +9,15 @@ inspection drone's pad and stay there.
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
+from typing import Sequence
 
 import torch
 from torch import Tensor
 
-from envs.base import Quantity, System, check_record, unit
+from envs.base import Quantity, System, check_record, scalar, unit
+from envs.sketch import Box, Disc, Ground, Push, Segment, Trace
 
 
 @dataclass(frozen=True)
@@ -58,6 +61,7 @@ class Quadrotor(System):
     Params = QuadrotorParams
     Task = QuadrotorTask
     default_dt = 0.04
+    robustness_params = ("mass", "inertia", "arm_length")  # model error; not gravity or limits
 
     @property
     def action_low(self) -> tuple[float, ...]:
@@ -111,3 +115,32 @@ class Quadrotor(System):
         t = self.task
         return (f"within {t.position_tolerance} m of the hover point and slower than {t.speed_tolerance} m/s "
                 f"for the last {t.hold_time} s")
+
+    # ---- deployment facts ---------------------------------------------------------------------------------
+    @property
+    def state_limits(self) -> dict[str, tuple[float, float]]:
+        """The envelope of a sensible craft: never below its pad (``z >= 0``) and never upside down
+        (``|pitch| <= pi / 2``)."""
+        return {"z": (0.0, math.inf), "pitch": (-math.pi / 2, math.pi / 2)}
+
+    def sketch(self, x: Sequence[float]) -> list:
+        arm = 2 * scalar(self.params.arm_length)  # drawn at twice the true size so the craft reads at this zoom
+        tx, tz = self.task.target
+        cx, cz, th = x[0], x[1], x[2]
+        axis, normal = (math.cos(th), math.sin(th)), (-math.sin(th), math.cos(th))
+        rotors = [(cx + s * arm * axis[0], cz + s * arm * axis[1]) for s in (-1, 1)]  # left, right
+        out = [Ground(tx - 3, tx + 3, 0.0), Box((tx, 0.025), 0.7, 0.05, role="goal"),
+               Segment((tx - 0.07, tz), (tx + 0.07, tz), 0.01, "goal"),
+               Segment((tx, tz - 0.07), (tx, tz + 0.07), 0.01, "goal"), Trace((cx, cz)),
+               Segment(rotors[0], rotors[1], 0.018), Disc((cx, cz), 0.3 * arm)]
+        for i, (rx, rz) in enumerate(rotors):
+            blade = 0.35 * arm
+            out += [Segment((rx - blade * axis[0], rz - blade * axis[1]), (rx + blade * axis[0], rz + blade * axis[1]),
+                            0.01),
+                    Push((rx, rz), normal, 0.7, i, one_sided=True, base=0.1)]
+        return out
+
+    def sketch_bounds(self, states: Sequence[Sequence[float]]) -> tuple[float, float, float, float]:
+        tx, tz = self.task.target
+        xs, zs = [s[0] for s in states], [s[1] for s in states]
+        return (min(min(xs), tx) - 0.6, max(max(xs), tx) + 0.6, -0.3, max(max(zs), tz) + 0.6)
