@@ -9,12 +9,12 @@
   Freeman, Schoenholz, Kachman 2021, "Gradients are not all you need").
 * :func:`run_race`: every entrant trains the same system from the same initial policy (same seed, same policy
   settings) under the same budget of simulator steps, and separately of compute seconds, over several seeds;
-  held-out cost is recorded against both. :func:`summarise` turns the curves into steps and seconds to reach
+  held-out cost is recorded against both. :func:`race_summary` turns the curves into steps and seconds to reach
   a target cost, and their ratios to a reference entrant.
 
 Seconds are compute seconds: the sum of the trainer's per-iteration times (rollouts, gradient, optimiser step),
 excluding held-out evaluations and checkpoints, which every entrant does equally often. Writing the CSV files,
-figures and report is :mod:`apg.compare_report`'s job; this module computes and prints nothing.
+figures and report is :mod:`apg.reports.compare_report`'s job; this module computes and prints nothing.
 """
 
 from __future__ import annotations
@@ -438,7 +438,7 @@ def _median_with_misses(values: Sequence[float]) -> float:
     return statistics.median(sorted(values)) if values else float("inf")
 
 
-def summarise(result: RaceResult) -> list[dict[str, Any]]:
+def race_summary(result: RaceResult) -> list[dict[str, Any]]:
     """One row per (budget, entrant): final cost and success (median and range over seeds), steps and seconds to
     the target (median over seeds, a seed that never reached it counting as infinite), and their ratios to the
     reference entrant's."""
@@ -482,5 +482,5 @@ def summarise(result: RaceResult) -> list[dict[str, Any]]:
     return rows
 
 
-__all__ = ["StudySettings", "RaceSettings", "Entrant", "RaceResult", "gradient_study", "run_race", "summarise",
+__all__ = ["StudySettings", "RaceSettings", "Entrant", "RaceResult", "gradient_study", "run_race", "race_summary",
            "choose_target"]

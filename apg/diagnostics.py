@@ -27,17 +27,12 @@ import dataclasses
 import math
 import numbers
 from dataclasses import dataclass
-from typing import TYPE_CHECKING
 
-import numpy as np
 import torch
 from torch import Tensor, nn
 from torch.func import functional_call
 
 from envs.base import System
-
-if TYPE_CHECKING:
-    from matplotlib.figure import Figure
 
 # Sums the amplification divides by are floored at this share of their largest value (and at float64's smallest
 # normal number), so a cost gradient that vanishes along part of the horizon never divides by zero.
@@ -333,42 +328,4 @@ def gradient_profile(system: System, policy: nn.Module, x0: Tensor, horizon: int
     )
 
 
-def profile_figure(profile: GradientProfile) -> "Figure":
-    """A heatmap of ``log10`` batch-mean ``|dC/dx_t|`` (time on x, state entry on y) above a panel with the
-    ``log10`` costate norm, action-gradient norm, amplification and Jacobian ``sigma_max`` against time."""
-    from apg import plots  # selects the Agg backend
-
-    plt = plots.plt
-    t = profile.times.numpy()
-    with np.errstate(divide="ignore", invalid="ignore"):
-        heat = np.ma.masked_invalid(np.log10(profile.costate.numpy().T))  # (state_dim, T+1); zeros masked
-        lines = [("costate norm |dC/dx_t|", t, np.log10(profile.costate_norm.numpy()), "-"),
-                 ("action gradient norm |dC/du_t|", t[:-1],
-                  np.log10(torch.linalg.vector_norm(profile.action, dim=-1).numpy()), "--"),
-                 ("amplification |lambda_t| / sum_s>=t |g_s|", t, np.log10(profile.amplification.numpy()), ":"),
-                 ("sigma_max(dx_t/dx_0)", t, np.log10(profile.jacobian_sigma.numpy()), "-")]
-    n = len(profile.state_names)
-    fig, (top, bottom) = plt.subplots(2, 1, figsize=(9, 2.0 + 0.35 * n + 2.6), sharex=True,
-                                      gridspec_kw={"height_ratios": [max(1.0, 0.35 * n), 2.6]})
-    half = 0.5 * profile.dt
-    mesh = top.imshow(heat, aspect="auto", origin="lower", interpolation="nearest", cmap="magma",
-                      extent=(t[0] - half, t[-1] + half, -0.5, n - 0.5))
-    top.set_yticks(range(n), profile.state_names, fontsize=8)
-    top.set_title("log10 batch-mean |dC/dx_t| (costate) per state entry", fontsize=9)
-    fig.colorbar(mesh, ax=top, pad=0.01).set_label("log10 |dC/dx_t[i]|", fontsize=8)
-    colours = plt.get_cmap("viridis")([0.05, 0.35, 0.6, 0.85])
-    for colour, (label, time, values, style) in zip(colours, lines):
-        bottom.plot(time, values, style, color=colour, lw=1.4, label=label)
-    bottom.set_ylabel("log10", fontsize=8)
-    bottom.set_xlabel("time [s]")
-    bottom.grid(alpha=0.3)
-    bottom.legend(fontsize=8, loc="best")
-    bottom.set_title(f"costate growth {profile.growth:.3g}x (largest amplification), "
-                     f"sigma_max {profile.sigma_max:.3g}", fontsize=9)
-    # The colourbar narrows the heatmap; give the lower panel the same width so the time axes line up.
-    fig.colorbar(mesh, ax=bottom, pad=0.01).ax.set_visible(False)
-    fig.tight_layout()
-    return fig
-
-
-__all__ = ["GradientProfile", "gradient_profile", "profile_figure"]
+__all__ = ["GradientProfile", "gradient_profile"]

@@ -1,8 +1,8 @@
 """Closed-loop evaluation of a trained or exported policy, and its robustness to a plant that differs from the model.
 
-:func:`simulate` is :func:`apg.rollout.rollout` with the ways a real machine departs from its model put in:
-physical parameters other than nominal, an actuator gain, observation noise, an actuation delay of whole steps
-and an impulsive push. With no departure it takes exactly the same operations as ``rollout`` (tested).
+:func:`disturbed_closed_loop` is :func:`apg.rollout.rollout` with the ways a real machine departs from its model
+put in: physical parameters other than nominal, an actuator gain, observation noise, an actuation delay of whole
+steps and an impulsive push. With no departure it takes exactly the same operations as ``rollout`` (tested).
 
 Noise and pushes are sized per state entry by a *reference scale*: by default the half-width of the task's
 initial-state box (so the scale belongs to the task, not to the policy under test, and two policies for the
@@ -54,7 +54,8 @@ class Disturbance:
 class SweepSettings:
     """The robustness sweep: one curve per physical parameter, actuator gain, noise, delay and push."""
 
-    params: tuple[tuple[str, float, float], ...] = ()  # (name, low, high) in the parameter's unit; () = defaults
+    # (name, low, high) in the parameter's unit; () sweeps the system's own robustness_params over default_span
+    params: tuple[tuple[str, float, float], ...] = ()
     default_span: tuple[float, ...] = (0.5, 2.0)  # defaults sweep each listed parameter over these multiples
     points: int = 9  # grid points per physical parameter (the nominal value is always one of them)
     actuator_gain: tuple[float, ...] = (0.5, 0.7, 0.85, 1.0, 1.15, 1.3, 1.5)
@@ -75,43 +76,6 @@ class SweepSettings:
                              ("pushes", self.pushes)):
             if any(v < 0 for v in values):
                 raise ValueError(f"robustness.{name} must be >= 0, got {list(values)}")
-
-
-# Physical parameters swept by default (model error a real machine has; gravity and limits are not in the list);
-# a system not listed sweeps every parameter in kg or kg m^2.
-DEFAULT_SWEEP: dict[str, tuple[str, ...]] = {
-    "pendulum": ("mass", "length", "damping"),
-    "cartpole": ("cart_mass", "pole_mass", "half_length"),
-    "acrobot": ("link_mass_1", "link_mass_2", "link_length_1", "link_length_2"),
-    "double_integrator": ("mass",),
-    "quadrotor": ("mass", "inertia", "arm_length"),
-    "crane": ("load_mass", "rope_length", "trolley_mass", "rolling_resistance"),
-}
-
-
-def default_limits(system: System) -> dict[str, tuple[float, float]]:
-    """State limits counted as violations by default, ``{state name: (low, high)}`` in the state's unit.
-
-    Where the system or its literature states a limit it is used (the cart-pole track; Sutton and Barto's acrobot
-    velocity bounds, 4 pi and 9 pi rad/s); the rest are stated here as the envelope of a sensible machine: the
-    quadrotor never below its pad or upside down, the crane trolley within 2 m beyond the start and the target
-    and the load within 0.3 rad of hanging, the pendulum no faster than 8 rad/s (falling from rest upright
-    reaches 2 sqrt(g / l) = 6.3 rad/s at the default length).
-    """
-    t, name = system.task, system.name
-    if name == "cartpole":
-        return {"cart_position": (-t.track_limit, t.track_limit)}
-    if name == "acrobot":
-        return {"shoulder_velocity": (-4 * math.pi, 4 * math.pi), "elbow_velocity": (-9 * math.pi, 9 * math.pi)}
-    if name == "quadrotor":
-        return {"z": (0.0, math.inf), "pitch": (-math.pi / 2, math.pi / 2)}
-    if name == "crane":
-        return {"trolley_position": (-2.0, t.distance + 2.0), "sway_angle": (-0.3, 0.3)}
-    if name == "pendulum":
-        return {"angular_velocity": (-8.0, 8.0)}
-    if name == "double_integrator":
-        return {"position": (-5.0, 5.0)}
-    return {}
 
 
 def reference_scale(system: System, overrides: Mapping[str, float] | None = None) -> Tensor:
@@ -157,9 +121,9 @@ def perturbed_system(system: System, disturbance: Disturbance) -> System:
 
 
 @torch.no_grad()
-def simulate(system: System, policy: Callable[[Tensor], Tensor], x0: Tensor, horizon: int,
-             disturbance: Disturbance = Disturbance(), *, seed: int = 0,
-             scale: Tensor | None = None) -> ClosedLoop:
+def disturbed_closed_loop(system: System, policy: Callable[[Tensor], Tensor], x0: Tensor, horizon: int,
+                          disturbance: Disturbance = Disturbance(), *, seed: int = 0,
+                          scale: Tensor | None = None) -> ClosedLoop:
     """Run ``policy`` in closed loop on ``system`` (perturbed by ``disturbance``) from ``x0`` ``(B, state_dim)``.
 
     Args:
@@ -257,7 +221,7 @@ def violations(run: ClosedLoop, limits: Mapping[str, tuple[float, float]]) -> di
     return out
 
 
-def summarise(run: ClosedLoop, limits: Mapping[str, tuple[float, float]]) -> dict[str, Any]:
+def evaluation_metrics(run: ClosedLoop, limits: Mapping[str, tuple[float, float]]) -> dict[str, Any]:
     """The closed-loop figures of one batch: success (with a 95 % interval), cost distribution,
     time-to-success, action saturation and state-limit violations."""
     n = int(run.success.numel())
@@ -330,9 +294,7 @@ def sweep_plan(system: System, settings: SweepSettings) -> list[tuple[str, str, 
     ranges = list(settings.params)
     if not ranges:
         lo, hi = settings.default_span
-        # Systems without a list sweep their masses and inertias.
-        default = DEFAULT_SWEEP.get(system.name) or tuple(n for n, u in units.items() if u in ("kg", "kg m^2"))
-        for name in default:
+        for name in system.robustness_params:
             v = float(getattr(system.params, name))
             ranges.append((name, lo * v, hi * v))
     plan = []
@@ -366,7 +328,7 @@ def sweep(system: System, policy: Callable[[Tensor], Tensor], x0: Tensor, horizo
     """Success and mean cost along every axis of :func:`sweep_plan`, from the same initial states ``x0``.
 
     At each axis's nominal point the plant is exactly the nominal one, so that point reproduces
-    :func:`simulate` without a disturbance (tested). ``progress(done, total, what)`` is called per point.
+    :func:`disturbed_closed_loop` without a disturbance (tested). ``progress(done, total, what)`` is called per point.
     """
     plan = sweep_plan(system, settings)
     total = sum(len(p) for _, _, p, _ in plan)
@@ -375,7 +337,7 @@ def sweep(system: System, policy: Callable[[Tensor], Tensor], x0: Tensor, horizo
     for axis, label, points, nominal_index in plan:
         succ, cost = [], []
         for j, (value, dist) in enumerate(points):
-            run = simulate(system, policy, x0, horizon, dist, seed=seed + done, scale=scale)
+            run = disturbed_closed_loop(system, policy, x0, horizon, dist, seed=seed + done, scale=scale)
             succ.append(float(run.success.double().mean()))
             cost.append(float(run.trajectory.total_cost.double().mean()))
             done += 1
@@ -387,6 +349,5 @@ def sweep(system: System, policy: Callable[[Tensor], Tensor], x0: Tensor, horizo
     return curves
 
 
-__all__ = ["Disturbance", "SweepSettings", "ClosedLoop", "Curve", "simulate", "summarise", "sweep", "sweep_plan",
-           "param_grid", "default_limits", "reference_scale", "time_to_success", "saturation", "violations",
-           "DEFAULT_SWEEP"]
+__all__ = ["Disturbance", "SweepSettings", "ClosedLoop", "Curve", "disturbed_closed_loop", "evaluation_metrics",
+           "sweep", "sweep_plan", "param_grid", "reference_scale", "time_to_success", "saturation", "violations"]

@@ -7,8 +7,8 @@ import math
 import sys
 from typing import Any
 
-from apg.diagnostics import GradientProfile, profile_figure
-from apg.plots import trajectory_figure
+from apg.diagnostics import GradientProfile
+from apg.reports.figures import profile_figure, trajectory_figure
 from apg.rollout import Evaluation
 from apg.trainer import Monitor, RunInfo
 

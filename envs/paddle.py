@@ -31,7 +31,7 @@ import torch
 from torch import Tensor
 
 from envs.base import Quantity, System, check_record, scalar, unit
-from envs.sketch import Box, Disc, Ground, Push, Segment, Trace
+from envs.sketch import Box, Disc, Push, Segment, Trace
 from envs.contact import kelvin_voigt_restitution, normal_force
 
 
@@ -163,13 +163,15 @@ class Paddle(System):
 
     def sketch(self, x: Sequence[float]) -> list:
         ball, paddle, target = x[0], x[1], self.task.target
-        stroke = self.state_limits["paddle_height"]
-        return [Ground(-0.4, 0.4, stroke[0] - 0.15), Segment((-0.3, target), (0.3, target), 0.008, "goal", dashed=True),
-                *(Segment((-0.2, y), (0.2, y), 0.006, "limit", dashed=True) for y in stroke),
-                Segment((0.0, stroke[0] - 0.15), (0.0, paddle - 0.02), 0.03, "support"),  # the motor's rod
+        low, high = self.state_limits["paddle_height"]
+        return [Box((0.0, low - 0.1), 0.14, 0.2, role="support"),  # the linear motor, below its stroke
+                Segment((-0.3, target), (0.3, target), 0.008, "goal", dashed=True),
+                *(Segment((-0.2, y), (0.2, y), 0.006, "limit", dashed=True) for y in (low, high)),
+                Segment((0.0, low), (0.0, paddle - 0.02), 0.03, "support"),  # the motor's rod
                 Box((0.0, paddle - 0.01), 0.3, 0.02, role="body"), Trace((0.0, ball)),
                 Disc((0.0, ball), scalar(self.params.ball_radius)), Push((0.25, paddle), (0.0, 1.0), 0.3, 0)]
 
     def sketch_bounds(self, states: Sequence[Sequence[float]]) -> tuple[float, float, float, float]:
         top = max(max(s[0] for s in states) + scalar(self.params.ball_radius), self.task.target) + 0.15
-        return (-0.6, 0.6, self.state_limits["paddle_height"][0] - 0.25, top)
+        bottom = min(self.state_limits["paddle_height"][0] - 0.25, min(s[1] for s in states) - 0.1)
+        return (-0.6, 0.6, bottom, top)

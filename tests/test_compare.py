@@ -19,8 +19,8 @@ from apg import OptimSettings, Policy, PolicySettings, TrainSettings
 from apg.cli import compare_config
 from apg.cli.compare import CONFIG_DIR
 from apg.compare import (Entrant, RaceResult, RaceSettings, StudySettings, choose_target, evaluation_schedule,
-                         gradient_study, summarise)
-from apg.compare_report import FILES
+                         gradient_study, race_summary)
+from apg.reports.compare_report import FILES
 from apg.estimators import EstimatorSettings
 
 F64 = torch.float64
@@ -99,18 +99,18 @@ def test_target_steps_and_ratios_by_hand():
     result = _result(CURVES)
     # 95 % of the way from the median initial cost (10) to analytic's worst final cost (1.2), on a log scale.
     assert result.target == pytest.approx(10 ** 0.05 * 1.2 ** 0.95)  # 1.334
-    rows = {r["entrant"]: r for r in summarise(result)}
+    rows = {r["entrant"]: r for r in race_summary(result)}
     # analytic: both seeds first get below 1.334 at the last evaluation (300 steps, 3 s); es never does.
     assert rows["analytic"]["steps_to_target"] == 300 and rows["analytic"]["seconds_to_target"] == 3.0
     assert rows["es"]["reached"] == 0 and math.isinf(rows["es"]["steps_to_target"])
     # Target 1.9: analytic at 200 and 100 steps (median 150); es seed 0 at 4000 steps, seed 1 never, so the
     # median of {4000, inf} is a miss and there is no ratio.
-    mid = {r["entrant"]: r for r in summarise(_result(CURVES, target_cost=1.9))}
+    mid = {r["entrant"]: r for r in race_summary(_result(CURVES, target_cost=1.9))}
     assert mid["analytic"]["steps_to_target"] == 150 and mid["es"]["reached"] == 1
     assert math.isinf(mid["es"]["steps_to_target"]) and math.isnan(mid["es"]["steps_ratio"])
     # Target 3.0, reached on every seed: analytic at 200 and 100 steps (2 s, 1 s), es at 2000 and 4000 steps
     # (0.5 s, 1 s); the ratios are those of the medians: 3000 / 150 steps and 0.75 / 1.5 s.
-    easy = {r["entrant"]: r for r in summarise(_result(CURVES, target_cost=3.0))}
+    easy = {r["entrant"]: r for r in race_summary(_result(CURVES, target_cost=3.0))}
     assert easy["analytic"]["steps_to_target"] == 150 and easy["es"]["steps_to_target"] == 3000
     assert easy["es"]["steps_ratio"] == pytest.approx(20.0)
     assert easy["es"]["seconds_ratio"] == pytest.approx(0.5)
@@ -129,7 +129,7 @@ def test_no_target_when_no_entrant_improves():
     flat = {k: [(s, t, 10.0 + 0.0 * c) for s, t, c in v] for k, v in CURVES.items()}
     result = _result(flat)
     assert result.target is None and "not below" in result.target_note
-    assert all(math.isinf(r["steps_to_target"]) for r in summarise(result))
+    assert all(math.isinf(r["steps_to_target"]) for r in race_summary(result))
 
 
 def test_target_falls_back_to_the_best_entrant_when_the_reference_does_not_improve():
@@ -138,7 +138,7 @@ def test_target_falls_back_to_the_best_entrant_when_the_reference_does_not_impro
     # es's worst final cost is 2.5: 95 % of the way from 10 on a log scale.
     assert result.target == pytest.approx(10 ** 0.05 * 2.5 ** 0.95)
     assert "es's worst final cost" in result.target_note and "analytic's worst final cost (10)" in result.target_note
-    rows = {r["entrant"]: r for r in summarise(result)}
+    rows = {r["entrant"]: r for r in race_summary(result)}
     assert rows["es"]["reached"] == 2 and math.isnan(rows["es"]["steps_ratio"])  # no ratio to a reference that missed
 
 

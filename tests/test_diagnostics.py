@@ -26,10 +26,10 @@ import torch
 from torch import nn
 
 import envs
-from apg.diagnostics import GradientProfile, gradient_profile, profile_figure
+from apg.diagnostics import GradientProfile, gradient_profile
 from apg.monitor import TAGS, ProgressMonitor, TensorBoardMonitor
-from apg.plots import plt  # the Agg backend
 from apg.policies import PolicySettings, make_policy
+from apg.reports.figures import plt, profile_figure  # the Agg backend
 from apg.rollout import rollout
 from apg.trainer import RunInfo, TrainSettings
 

@@ -297,3 +297,102 @@ def test_success_uses_dt_for_the_hold_window(name):
     assert system.final_window(states, 1.0).shape[0] == max(1, round(1.0 / system.dt))
     assert system.replace(dt=system.dt / 2).final_window(states, 1.0).shape[0] == max(1, round(2.0 / system.dt))
     assert system.final_window(states, 1e-9).shape[0] == 1
+
+
+# ---------------------------------------------------------------------------------------------------------------
+# deployment facts: every registered system carries its state limits, sweep parameters and sketch
+# ---------------------------------------------------------------------------------------------------------------
+@pytest.mark.parametrize("name", NAMES)
+def test_state_limits_name_real_states_with_low_below_high(name):
+    system = envs.build(name)
+    limits = system.state_limits
+    states = [s.name for s in system.state]
+    assert limits, f"{name} declares no state limits"
+    for state, (low, high) in limits.items():
+        assert state in states, f"{name}.state_limits names {state!r}, not one of {states}"
+        assert low < high and not (math.isnan(low) or math.isnan(high)), (state, low, high)
+    # the task's initial box lies inside the limits: a policy is not charged for where it was started
+    for i, s in enumerate(system.state):
+        if s.name in limits and not s.angle:
+            low, high = limits[s.name]
+            assert low <= system.task.init_low[i] and system.task.init_high[i] <= high, s.name
+
+
+def test_state_limits_follow_the_task():
+    """Limits the task sets move with it (the cart-pole's track, the crane's distance)."""
+    assert envs.build("cartpole", task={"track_limit": 1.5}).state_limits["cart_position"] == (-1.5, 1.5)
+    assert envs.build("crane", task={"distance": 4.0}).state_limits["trolley_position"] == (-2.0, 6.0)
+
+
+@pytest.mark.parametrize("name", NAMES)
+def test_robustness_params_name_real_positive_fields(name):
+    cls = envs.system_class(name)
+    params = cls().params
+    fields = {f.name: f for f in dataclasses.fields(params)}
+    assert cls.robustness_params, f"{name} sweeps no parameter by default"
+    assert len(set(cls.robustness_params)) == len(cls.robustness_params)
+    for p in cls.robustness_params:
+        assert p in fields, f"{name}.robustness_params names {p!r}, not a field of {type(params).__name__}"
+        assert float(getattr(params, p)) > 0, f"{p}: a default sweep scales the nominal value, which must be > 0"
+        assert p != "gravity" and not p.endswith("_limit"), f"{p}: not a model error"
+
+
+@pytest.mark.parametrize("name", NAMES)
+def test_sketch_is_plain_shapes_with_the_traced_point_in_view(name):
+    from envs import sketch as sk
+
+    system = envs.build(name)
+    x = system.sample_initial(16, torch.Generator().manual_seed(0), torch.float64).tolist()
+    x0, x1, y0, y1 = system.sketch_bounds(x)
+    assert x0 < x1 and y0 < y1 and all(math.isfinite(v) for v in (x0, x1, y0, y1))
+    for state in x:
+        shapes = system.sketch(state)
+        assert shapes and all(isinstance(s, sk.PRIMITIVES) for s in shapes)
+        assert all(math.isfinite(v) for v in sk.extent(shapes))
+        for s in shapes:
+            if isinstance(s, (sk.Push, sk.Twist)):
+                assert 0 <= s.action < system.action_dim
+        traces = [s.point for s in shapes if isinstance(s, sk.Trace)]
+        assert len(traces) <= 1
+        for px, py in traces:
+            assert x0 <= px <= x1 and y0 <= py <= y1, (px, py)
+
+
+def test_sketch_follows_the_forward_kinematics():
+    """Reference: the acrobot's tip at (l1 sin q1 + l2 sin(q1 + q2), -l1 cos q1 - l2 cos(q1 + q2)), angles from
+    hanging, written here from the geometry of Sutton & Barto (1998), sec. 11.3, whose goal test is that height."""
+    from envs import sketch as sk
+
+    system = envs.build("acrobot", params={"link_length_1": 0.7, "link_length_2": 1.3})
+    q1, q2 = 0.4, -1.1
+    (tip,) = [s.point for s in system.sketch([q1, q2, 0.0, 0.0]) if isinstance(s, sk.Trace)]
+    want = (0.7 * math.sin(q1) + 1.3 * math.sin(q1 + q2), -0.7 * math.cos(q1) - 1.3 * math.cos(q1 + q2))
+    assert tip == pytest.approx(want, abs=1e-12)
+
+
+def test_a_system_without_its_deployment_facts_cannot_be_built():
+    class Bare(envs.System):
+        name = "bare"
+        state = Pendulum.state
+        action = Pendulum.action
+        Params = Pendulum.Params
+        Task = Pendulum.Task
+        default_dt = 0.05
+        acceleration = Pendulum.acceleration
+        running_cost = Pendulum.running_cost
+        terminal_cost = Pendulum.terminal_cost
+        success = Pendulum.success
+
+    with pytest.raises(TypeError, match="sketch.*state_limits|state_limits.*sketch"):
+        Bare()
+
+
+def test_sketch_records_name_a_bad_role_or_size():
+    from envs import sketch as sk
+
+    with pytest.raises(ValueError, match="Segment.role must be one of"):
+        sk.Segment((0.0, 0.0), (1.0, 0.0), 0.1, role="paint")
+    with pytest.raises(ValueError, match="Disc.radius must be a finite length"):
+        sk.Disc((0.0, 0.0), -1.0)
+    with pytest.raises(ValueError, match="Push.direction must be a unit vector"):
+        sk.Push((0.0, 0.0), (2.0, 0.0), 1.0, 0)

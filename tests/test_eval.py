@@ -18,11 +18,11 @@ from PIL import Image
 
 import envs
 from apg import Analytic, OptimSettings, PolicySettings, TrainSettings, evaluate, make_policy, train
-from apg.animation import DRAWERS, animate
-from apg.evaluation import (Disturbance, SweepSettings, _wilson, param_grid, saturation, simulate, summarise, sweep,
-                            time_to_success, violations, ClosedLoop)
+from apg.evaluation import (ClosedLoop, Disturbance, SweepSettings, _wilson, disturbed_closed_loop, evaluation_metrics,
+                            param_grid, saturation, sweep, sweep_plan, time_to_success, violations)
 from apg.export import ExportSettings, export
 from apg.report import EvalSettings, run_report
+from apg.reports.animation import animate
 from apg.cli.eval import CONFIG_DIR
 from apg.cli.schemas import build_eval
 from hydra import compose, initialize_config_dir
@@ -45,7 +45,7 @@ def test_undisturbed_simulation_is_the_trainers_evaluation(name, dtype):
     system, policy = _policy(name, dtype)
     x0 = system.sample_initial(64, torch.Generator().manual_seed(2), dtype)
     ref = evaluate(system, policy, x0, 50)
-    run = simulate(system, policy, x0, 50)
+    run = disturbed_closed_loop(system, policy, x0, 50)
     assert torch.equal(run.trajectory.states, ref.trajectory.states)
     assert torch.equal(run.trajectory.total_cost, ref.costs)
     assert torch.equal(run.success, ref.success)
@@ -55,7 +55,7 @@ def test_sweep_at_the_nominal_point_reproduces_the_plain_evaluation():
     """Every axis's nominal point is the undisturbed plant, so it must give the plain evaluation exactly."""
     system, policy = _policy("crane", torch.float64)
     x0 = system.sample_initial(48, torch.Generator().manual_seed(3), torch.float64)
-    plain = simulate(system, policy, x0, 80)
+    plain = disturbed_closed_loop(system, policy, x0, 80)
     curves = sweep(system, policy, x0, 80, SMALL_SWEEP, seed=7)
     axes = {c.axis for c in curves}
     assert {"param:load_mass", "param:rope_length", "actuator_gain", "obs_noise", "delay", "push"} <= axes
@@ -77,7 +77,7 @@ def test_delay_and_actuator_gain_match_the_exact_linear_recursion(delay, gain):
     k_gain = np.array([1.5, 2.0])
     policy = lambda obs: -(obs @ torch.tensor(k_gain, dtype=obs.dtype)).unsqueeze(-1)
     x0 = system.sample_initial(5, torch.Generator().manual_seed(4), torch.float64)
-    run = simulate(system, policy, x0, 40, Disturbance(delay=delay, actuator_gain=gain))
+    run = disturbed_closed_loop(system, policy, x0, 40, Disturbance(delay=delay, actuator_gain=gain))
     a, b = _zoh(system.dt, 2.0)
     x = x0.numpy().copy()
     queue = [-(x @ k_gain)] * delay
@@ -93,7 +93,7 @@ def test_push_is_an_exact_velocity_step_at_the_stated_time():
     system = envs.build("double_integrator")
     zero = lambda obs: torch.zeros(obs.shape[0], 1, dtype=obs.dtype)
     x0 = torch.zeros(6, 2, dtype=torch.float64)
-    run = simulate(system, zero, x0, 40, Disturbance(push=2.0, push_time=0.25), seed=1)
+    run = disturbed_closed_loop(system, zero, x0, 40, Disturbance(push=2.0, push_time=0.25), seed=1)
     v = run.trajectory.states[:, :, 1]  # (T+1, B)
     half_width = (system.task.init_high[1] - system.task.init_low[1]) / 2
     k = 10  # round(0.25 * 40)
@@ -111,7 +111,7 @@ def test_observation_noise_has_the_stated_standard_deviation():
         return torch.zeros(obs.shape[0], 1, dtype=obs.dtype)
 
     x0 = torch.zeros(500, 2, dtype=torch.float64)
-    simulate(system, recorder, x0, 40, Disturbance(obs_noise=0.1))
+    disturbed_closed_loop(system, recorder, x0, 40, Disturbance(obs_noise=0.1))
     noise = torch.cat(seen)  # true state stays 0
     want = 0.1 * torch.tensor([2.0, 1.0], dtype=torch.float64)  # half-widths of the default initial box
     torch.testing.assert_close(noise.std(0), want, rtol=0.03, atol=0)
@@ -141,7 +141,7 @@ def test_metrics_on_a_trajectory_built_by_hand():
     assert tts[0].item() == pytest.approx(29 * system.dt) and math.isnan(tts[1].item())
     assert saturation(run).item() == pytest.approx(15 / 120)
     assert violations(run, {"angular_velocity": (-8.0, 8.0)}) == {"angular_velocity": 0.5, "any": 0.5}
-    s = summarise(run, {"angular_velocity": (-8.0, 8.0)})
+    s = evaluation_metrics(run, {"angular_velocity": (-8.0, 8.0)})
     assert s["success_rate"] == 0.5 and s["time_to_success_s"]["reached"] == 1
 
 
@@ -252,13 +252,30 @@ def test_cli_eval_runs_and_names_bad_keys(quad_run, tmp_path):
                 run_report(spec["sources"], spec["output"], spec["settings"])
 
 
-@pytest.mark.parametrize("name", sorted(DRAWERS))
-def test_every_drawable_system_animates(name, tmp_path):
+@pytest.mark.parametrize("name", envs.available())
+def test_every_system_animates(name, tmp_path):
+    """Every registered system draws itself: a GIF of the stated frame count is written, and bad shapes are named."""
     system, policy = _policy(name, torch.float64)
     x0 = system.sample_initial(1, torch.Generator().manual_seed(0), torch.float64)
-    run = simulate(system, policy, x0, 6)
+    run = disturbed_closed_loop(system, policy, x0, 6)
     path = animate(system, run.trajectory.states[:, 0].numpy(), run.trajectory.actions[:, 0].numpy(),
                    tmp_path / "a.gif", max_frames=3)
+    assert path.stat().st_size > 0
     assert Image.open(path).n_frames == 3
     with pytest.raises(ValueError, match="animate needs states"):
         animate(system, run.trajectory.states[:, 0, :1].numpy(), run.trajectory.actions[:, 0].numpy(), path)
+
+
+@pytest.mark.parametrize("name", envs.available())
+def test_default_sweep_varies_the_systems_own_parameters(name):
+    """With no ranges given, the sweep's parameter axes are the system's robustness_params, each over
+    default_span times its nominal value, with the nominal value on the grid."""
+    system = envs.build(name)
+    plan = sweep_plan(system, SweepSettings(points=5, default_span=(0.5, 2.0)))
+    axes = [(axis, points, k) for axis, _, points, k in plan if axis.startswith("param:")]
+    assert [axis for axis, _, _ in axes] == [f"param:{p}" for p in system.robustness_params]
+    for axis, points, k in axes:
+        nominal = float(getattr(system.params, axis[len("param:"):]))
+        values = [v for v, _ in points]
+        assert values[0] == pytest.approx(0.5 * nominal) and values[-1] == pytest.approx(2.0 * nominal), axis
+        assert values[k] == nominal and points[k][1].nominal, axis

@@ -20,7 +20,8 @@ import scipy.stats
 import yaml
 from hydra import compose, initialize_config_dir
 
-from apg.aggregate import find_runs, summarise, t_interval, write_summary
+from apg.aggregate import find_runs, multirun_summary, t_interval
+from apg.reports.multirun_report import write_summary
 from apg.cli.aggregate import main as aggregate_main
 from apg.cli.train import CONFIG_DIR
 
@@ -127,7 +128,7 @@ def test_joblib_sweep_over_a_setting(tmp_path):
     out = _apg("apg.cli.train", "--multirun", "hydra/launcher=many_cores", "hydra.launcher.n_jobs=2",
                "optim.lr=1e-3,3e-3", *TINY, f"hydra.sweep.dir={sweep}", cwd=tmp_path)
     assert out.returncode == 0, out.stderr[-3000:]
-    rows = summarise(find_runs(sweep))
+    rows = multirun_summary(find_runs(sweep))
     assert sorted(r["optim.lr"] for r in rows) == ["0.001", "0.003"]
     assert all(r["n"] == 1 and np.isnan(r["eval_cost_low"]) for r in rows)
 

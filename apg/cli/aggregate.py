@@ -1,4 +1,5 @@
-"""``apg-aggregate``: summarise a multirun directory into a table and a plot (see :mod:`apg.aggregate`).
+"""``apg-aggregate``: summarise a multirun directory into a table and a plot (:mod:`apg.aggregate` computes,
+:mod:`apg.reports.multirun_report` writes).
 
     apg-aggregate runs/multirun/2026-12-01_10-00-00               # writes summary.{csv,md,png} there
     apg-aggregate runs/multirun/2026-12-01_10-00-00 --out report --confidence 0.9
@@ -10,7 +11,7 @@ import argparse
 import sys
 from pathlib import Path
 
-from apg.aggregate import to_markdown, write_summary
+from apg.reports.multirun_report import to_markdown, write_summary
 
 
 def main(argv: list[str] | None = None) -> int:

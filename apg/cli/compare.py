@@ -16,9 +16,9 @@ from omegaconf import DictConfig
 from apg.checkpoint import CheckpointError, atomic_write_text, config_digest
 from apg.cli import compare_config  # registers the schema
 from apg.compare import Entrant, gradient_study, run_race
-from apg.compare_report import FILES, summary_table, write_outputs
 from apg.monitor import ProgressMonitor, TensorBoardMonitor
 from apg.policies import make_policy
+from apg.reports.compare_report import FILES, summary_table, write_outputs
 from apg.trainer import DTYPES, RunExistsError, load_policy
 
 CONFIG_DIR = str(Path(__file__).resolve().parents[2] / "configs")

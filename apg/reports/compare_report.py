@@ -14,13 +14,10 @@ import math
 from pathlib import Path
 from typing import Any, Sequence
 
-import matplotlib
+import matplotlib.pyplot as plt
+import numpy as np
 
-matplotlib.use("Agg")
-import matplotlib.pyplot as plt  # noqa: E402
-import numpy as np  # noqa: E402
-
-from apg.compare import RaceResult  # noqa: E402
+from apg.compare import RaceResult, race_summary
 
 FILES = {
     "study": "study.csv",
@@ -286,8 +283,6 @@ def write_outputs(out_dir: Path, system_name: str, success_criterion: str, study
     """Write every file in :data:`FILES` that applies; returns the race summary rows (or ``None``)."""
     from torch.utils.tensorboard import SummaryWriter
 
-    from apg.compare import summarise
-
     out_dir = Path(out_dir)
     out_dir.mkdir(parents=True, exist_ok=True)
     writer = SummaryWriter(str(out_dir / FILES["tensorboard"]))
@@ -304,7 +299,7 @@ def write_outputs(out_dir: Path, system_name: str, success_criterion: str, study
                     if math.isfinite(r[key]):
                         writer.add_scalar(f"{tag}/{key}", r[key], r["samples"])
         if result is not None:
-            summary = summarise(result)
+            summary = race_summary(result)
             write_csv(out_dir / FILES["curves"], result.curves)
             write_csv(out_dir / FILES["runs"], result.runs)
             write_csv(out_dir / FILES["summary"], summary)
