@@ -144,6 +144,10 @@ class System(abc.ABC):
         self.dt = float(self.default_dt if dt is None else dt)
         if not (math.isfinite(self.dt) and self.dt > 0):
             raise ValueError(f"dt must be a positive number of seconds, got {dt}")
+        sweep = getattr(type(self), "robustness_params", None)
+        if not (isinstance(sweep, tuple) and sweep and all(isinstance(n, str) for n in sweep)):
+            raise TypeError(f"{type(self).__name__}.robustness_params must be a non-empty tuple of Params field names "
+                            f"(the parameters a robustness sweep varies), got {sweep!r}; declare it on the class")
         if integrator not in INTEGRATORS:
             raise ValueError(f"unknown integrator {integrator!r}; choose one of {sorted(INTEGRATORS)}")
         self.integrator = integrator

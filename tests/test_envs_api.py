@@ -386,6 +386,15 @@ def test_a_system_without_its_deployment_facts_cannot_be_built():
     with pytest.raises(TypeError, match="sketch.*state_limits|state_limits.*sketch"):
         Bare()
 
+    class NoSweep(Bare):
+        state_limits = Pendulum.state_limits
+        sketch = Pendulum.sketch
+
+    with pytest.raises(TypeError, match="NoSweep.robustness_params must be a non-empty tuple"):
+        NoSweep()
+    NoSweep.robustness_params = ("mass",)
+    assert NoSweep().robustness_params == ("mass",)
+
 
 def test_sketch_records_name_a_bad_role_or_size():
     from envs import sketch as sk
