@@ -42,7 +42,6 @@ from envs.base import System, check_record
 
 log = logging.getLogger(__name__)
 METHODS = ("gradient", "ppo")
-BUDGETS = ("steps", "seconds")
 
 
 # ---- records ---------------------------------------------------------------------------------------------------

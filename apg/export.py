@@ -41,7 +41,7 @@ from apg.checkpoint import CHECKPOINT_NAME, atomic_write_bytes, atomic_write_tex
 from apg.policies import Policy
 from apg.rollout import Evaluation, evaluate
 from apg.trainer import load_policy
-from envs.base import System, check_record
+from envs.base import System, bounded, check_record
 
 log = logging.getLogger(__name__)
 
@@ -68,17 +68,17 @@ class PolicyFileError(ValueError):
 class ExportSettings:
     """How to export and how hard to check; the top of ``configs/export.yaml`` fills this record."""
 
-    opset: int = DEFAULT_OPSET  # ONNX default-domain opset the graph is written in
-    observations: int = 4096  # held-out observations for the output-parity check
-    action_tolerance: float = 1e-5  # largest |onnx - torch| / action half-range (dimensionless, float32)
-    rollouts: int = 64  # held-out initial states for the closed-loop check
-    horizon: int = 0  # closed-loop steps; 0: the training's evaluation horizon
-    cost_rtol: float = 1e-4  # largest relative difference of the mean closed-loop cost
+    opset: int = bounded(DEFAULT_OPSET, positive=True)  # ONNX default-domain opset the graph is written in
+    observations: int = bounded(4096, positive=True)  # held-out observations for the output-parity check
+    # largest |onnx - torch| / action half-range (dimensionless, float32)
+    action_tolerance: float = bounded(1e-5, positive=True)
+    rollouts: int = bounded(64, positive=True)  # held-out initial states for the closed-loop check
+    horizon: int = bounded(0, nonnegative=True)  # closed-loop steps; 0: the training's evaluation horizon
+    cost_rtol: float = bounded(1e-4, positive=True)  # largest relative difference of the mean closed-loop cost
     seed: int = 31_337  # seed of the check's initial states: shared with neither training nor its held-out set
 
     def __post_init__(self) -> None:
-        check_record(self, positive=("opset", "observations", "action_tolerance", "rollouts", "cost_rtol"),
-                     nonnegative=("horizon",))
+        check_record(self)
         if not 15 <= int(self.opset) <= 23:
             raise ValueError(f"opset must be between 15 and 23 (what torch's exporter writes and onnxruntime runs for "
                              f"these graphs), got {self.opset}")

@@ -9,7 +9,7 @@ from typing import Iterable
 
 import torch
 
-from envs.base import check_record
+from envs.base import bounded, check_record
 
 OPTIMISERS = ("adam", "sgd")
 SCHEDULES = ("constant", "cosine", "step")
@@ -20,16 +20,16 @@ class OptimSettings:
     """What optimiser to use; ``configs/optim/*.yaml`` fill this record."""
 
     name: str = "adam"  # adam | sgd
-    lr: float = 3e-3
+    lr: float = bounded(3e-3, positive=True)
     betas: tuple[float, ...] = (0.9, 0.999)  # adam only
-    momentum: float = 0.0  # sgd only
+    momentum: float = bounded(0.0, nonnegative=True)  # sgd only
     nesterov: bool = False  # sgd only
-    weight_decay: float = 0.0
+    weight_decay: float = bounded(0.0, nonnegative=True)
     schedule: str = "cosine"  # constant | cosine (to final_lr_fraction * lr) | step (times gamma every step_every)
-    warmup_iterations: int = 0  # linear ramp from lr / warmup_iterations
-    final_lr_fraction: float = 0.1
-    step_every: int = 100
-    gamma: float = 0.5
+    warmup_iterations: int = bounded(0, nonnegative=True)  # linear ramp from lr / warmup_iterations
+    final_lr_fraction: float = bounded(0.1, nonnegative=True)
+    step_every: int = bounded(100, positive=True)
+    gamma: float = bounded(0.5, positive=True)
 
     def __post_init__(self) -> None:
         if self.name not in OPTIMISERS:
@@ -38,8 +38,7 @@ class OptimSettings:
             raise ValueError(f"schedule must be one of {', '.join(SCHEDULES)}; got {self.schedule!r}")
         if len(self.betas) != 2 or not all(0 <= b < 1 for b in self.betas):
             raise ValueError(f"betas must be two numbers in [0, 1), got {list(self.betas)}")
-        check_record(self, positive=("lr", "step_every", "gamma"),
-                     nonnegative=("momentum", "weight_decay", "warmup_iterations", "final_lr_fraction"))
+        check_record(self)
 
     def ignored(self) -> list[str]:
         """Options set away from their defaults that this optimiser does not use."""

@@ -5,13 +5,12 @@ The normaliser's statistics are buffers, so they are saved and restored with the
 
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass
 
 import torch
 from torch import Tensor, nn
 
-from envs.base import System, check_record
+from envs.base import System, bounded, check_record
 
 ACTIVATIONS = {"tanh": nn.Tanh, "relu": nn.ReLU, "elu": nn.ELU, "gelu": nn.GELU, "silu": nn.SiLU}
 NORMALISERS = ("initial", "running", "none")
@@ -28,9 +27,11 @@ class PolicySettings:
     activation: str = "tanh"  # tanh | relu | elu | gelu | silu (ignored by linear)
     bias: bool = True
     normalise: str = "initial"  # initial: from the initial-state distribution; running: from rollouts; none
-    std_floor: float = 0.1  # smallest standard deviation the normaliser divides by (observation units)
+    # smallest standard deviation the normaliser divides by (observation units)
+    std_floor: float = bounded(0.1, positive=True)
     squash: str = "tanh"  # tanh: smooth map into the system's action limits; none: unbounded (LQR checks)
-    output_gain: float = 0.1  # scale of the last layer's initial weights, so early actions stay moderate
+    # scale of the last layer's initial weights, so early actions stay moderate
+    output_gain: float = bounded(0.1, positive=True)
 
     def __post_init__(self) -> None:
         for key, value, valid in (("kind", self.kind, KINDS), ("activation", self.activation, tuple(ACTIVATIONS)),
@@ -39,7 +40,7 @@ class PolicySettings:
                 raise ValueError(f"{key} must be one of {', '.join(valid)}; got {value!r}")
         if any(int(h) < 1 for h in self.hidden):
             raise ValueError(f"hidden widths must be >= 1, got {list(self.hidden)}")
-        check_record(self, positive=("std_floor", "output_gain"))
+        check_record(self)
 
 
 def mlp(sizes: list[int], activation: str, bias: bool = True) -> nn.Sequential:
@@ -127,7 +128,3 @@ def make_policy(settings: PolicySettings, system: System, generator: torch.Gener
         gen = generator if generator is not None else torch.Generator().manual_seed(0)
         policy.normaliser.update(system.observe(system.sample_initial(init_samples, gen, dtype)))
     return policy
-
-
-def parameter_count(policy: nn.Module) -> int:
-    return sum(math.prod(p.shape) for p in policy.parameters())

@@ -17,38 +17,39 @@ from typing import Sequence
 import torch
 from torch import Tensor
 
-from envs.base import Quantity, System, check_record, scalar, unit
+from envs.base import Quantity, System, bounded, check_record, scalar, unit
 from envs.sketch import Disc, Segment, Trace, Twist
 
 
 @dataclass(frozen=True)
 class AcrobotParams:
-    link_mass_1: float = unit("kg", 1.0)
-    link_mass_2: float = unit("kg", 1.0)
-    link_length_1: float = unit("m", 1.0)
-    link_length_2: float = unit("m", 1.0)
-    com_1: float = unit("m", 0.5)  # shoulder to centre of mass of link 1
-    com_2: float = unit("m", 0.5)  # elbow to centre of mass of link 2
-    inertia_1: float = unit("kg m^2", 1.0)  # about the centre of mass
-    inertia_2: float = unit("kg m^2", 1.0)
-    gravity: float = unit("m/s^2", 9.8)
-    torque_limit: float = unit("N m", 1.0)
+    link_mass_1: float = unit("kg", 1.0, positive=True)
+    link_mass_2: float = unit("kg", 1.0, positive=True)
+    link_length_1: float = unit("m", 1.0, positive=True)
+    link_length_2: float = unit("m", 1.0, positive=True)
+    com_1: float = unit("m", 0.5, positive=True)  # shoulder to centre of mass of link 1
+    com_2: float = unit("m", 0.5, positive=True)  # elbow to centre of mass of link 2
+    inertia_1: float = unit("kg m^2", 1.0, positive=True)  # about the centre of mass
+    inertia_2: float = unit("kg m^2", 1.0, positive=True)
+    gravity: float = unit("m/s^2", 9.8, positive=True)
+    torque_limit: float = unit("N m", 1.0, positive=True)
 
     def __post_init__(self) -> None:
-        check_record(self, positive=tuple(f for f in self.__dataclass_fields__))
+        check_record(self)
 
 
 @dataclass(frozen=True)
 class AcrobotTask:
-    w_height: float = 1.0  # weight on (l1 + l2 - tip height) / (l1 + l2)
-    w_velocity: float = unit("s^2/rad^2", 0.001)
-    w_torque: float = 0.01  # weight on (tau / torque_limit)^2
+    w_height: float = bounded(1.0, nonnegative=True)  # weight on (l1 + l2 - tip height) / (l1 + l2)
+    w_velocity: float = unit("s^2/rad^2", 0.001, nonnegative=True)
+    w_torque: float = bounded(0.01, nonnegative=True)  # weight on (tau / torque_limit)^2
     init_low: tuple[float, ...] = (-0.1, -0.1, -0.1, -0.1)  # th1, th2 (rad), th1d, th2d (rad/s)
     init_high: tuple[float, ...] = (0.1, 0.1, 0.1, 0.1)
-    goal_height: float = unit("m", 1.0)  # success: tip height above the shoulder exceeds this at some time
+    # success: tip height above the shoulder exceeds this at some time
+    goal_height: float = unit("m", 1.0, positive=True)
 
     def __post_init__(self) -> None:
-        check_record(self, positive=("goal_height",), nonnegative=("w_height", "w_velocity", "w_torque"))
+        check_record(self)
 
 
 class Acrobot(System):
@@ -86,18 +87,14 @@ class Acrobot(System):
         p = self.params
         return -p.link_length_1 * torch.cos(x[..., 0]) - p.link_length_2 * torch.cos(x[..., 0] + x[..., 1])
 
-    def _shape(self, x: Tensor) -> Tensor:
+    def stage_cost(self, x: Tensor) -> Tensor:
         p = self.params
         reach = p.link_length_1 + p.link_length_2
         return self.task.w_height * (reach - self.tip_height(x)) / reach + self.task.w_velocity * (
             x[..., 2] ** 2 + x[..., 3] ** 2)
 
-    def running_cost(self, x: Tensor, u: Tensor) -> Tensor:
-        a = u[..., 0] / self.params.torque_limit
-        return (self._shape(x) + self.task.w_torque * a ** 2) * self.dt
-
-    def terminal_cost(self, x: Tensor) -> Tensor:
-        return self._shape(x)
+    def effort_cost(self, u: Tensor) -> Tensor:
+        return self.task.w_torque * (u[..., 0] / self.params.torque_limit) ** 2
 
     def success(self, states: Tensor, actions: Tensor) -> Tensor:
         return (self.tip_height(states) > self.task.goal_height).any(dim=0)

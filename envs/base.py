@@ -37,8 +37,10 @@ def _is_number(v: object) -> bool:
 def check_record(record: object, positive: tuple[str, ...] = (), nonnegative: tuple[str, ...] = ()) -> None:
     """Validate a parameter record once, at the door.
 
-    Every field must be finite (a Python number or a tensor of per-batch values); those named in
-    ``positive`` must be > 0 and those in ``nonnegative`` >= 0. Raises ``ValueError`` naming the field.
+    Every field must be finite (a Python number or a tensor of per-batch values). A field declared with
+    ``positive=True`` (see :func:`unit` and :func:`bounded`) must be > 0, one declared ``nonnegative=True``
+    >= 0. The ``positive`` and ``nonnegative`` tuples of field names add to the declarations (the older way
+    of stating bounds, still accepted). Raises ``ValueError`` naming the field, its bound, unit and value.
     """
     for f in dataclasses.fields(record):  # type: ignore[arg-type]
         v = getattr(record, f.name)
@@ -53,12 +55,13 @@ def check_record(record: object, positive: tuple[str, ...] = (), nonnegative: tu
         else:
             continue
         unit = f.metadata.get("unit", "")
+        bound = f.metadata.get("bound")
         shown = v.tolist() if isinstance(v, Tensor) else v
         if not torch.isfinite(vals).all():
             raise ValueError(f"{f.name} must be finite, got {shown}")
-        if f.name in positive and not (vals > 0).all():
+        if (bound == "positive" or f.name in positive) and not (vals > 0).all():
             raise ValueError(f"{f.name} must be > 0 {unit}".rstrip() + f", got {shown}")
-        if f.name in nonnegative and not (vals >= 0).all():
+        if (bound == "nonnegative" or f.name in nonnegative) and not (vals >= 0).all():
             raise ValueError(f"{f.name} must be >= 0 {unit}".rstrip() + f", got {shown}")
 
 
@@ -80,9 +83,29 @@ def make_record(cls: type, values: Mapping[str, Any] | None, what: str) -> Any:
         raise ValueError(f"{what}.{e}") from None
 
 
-def unit(u: str, default: object) -> object:
-    """A dataclass field with a unit in its metadata (shown in errors and in the docs)."""
-    return dataclasses.field(default=default, metadata={"unit": u})
+def unit(u: str, default: object, *, positive: bool = False, nonnegative: bool = False) -> Any:
+    """A dataclass field with its unit, and optionally its sign bound, in the metadata.
+
+    The unit appears in error messages and documentation; :func:`check_record` enforces the bound
+    (``positive``: > 0, ``nonnegative``: >= 0), so each field states its range once, where it is declared.
+    """
+    return _declared(default, u, positive, nonnegative)
+
+
+def bounded(default: object, *, positive: bool = False, nonnegative: bool = False) -> Any:
+    """A dimensionless field (a weight, a count, a ratio) with a sign bound that :func:`check_record` enforces."""
+    if not (positive or nonnegative):
+        raise TypeError("bounded() needs positive=True or nonnegative=True; use a plain default for an unbounded field")
+    return _declared(default, "", positive, nonnegative)
+
+
+def _declared(default: object, u: str, positive: bool, nonnegative: bool) -> Any:
+    if positive and nonnegative:
+        raise TypeError("a field is either positive=True or nonnegative=True, not both (positive implies >= 0)")
+    metadata: dict[str, str] = {"unit": u}
+    if positive or nonnegative:
+        metadata["bound"] = "positive" if positive else "nonnegative"
+    return dataclasses.field(default=default, metadata=metadata)
 
 
 def wrap_angle(a: Tensor) -> Tensor:
@@ -108,6 +131,11 @@ class System(abc.ABC):
       differentiable in ``x``, ``u`` and tensor-valued parameters.
     * ``observe(x) -> (B, obs_dim)``: angles as ``(sin, cos)``, other entries as they are.
     * ``running_cost(x, u) -> (B,)`` per step and ``terminal_cost(x) -> (B,)`` at the end of the horizon.
+      One convention for every system: the running cost is ``(stage_cost(x) + effort_cost(u)) * dt``, a
+      rectangle-rule quadrature of a cost rate, so the total cost of a horizon hardly depends on ``dt``; the
+      terminal cost is by default the stage cost with weight 1 (as if the final state were held for one second).
+      Subclasses implement ``stage_cost`` and ``effort_cost`` and override ``terminal_cost`` only where it
+      differs (a Riccati cost-to-go, extra terminal weights).
     * ``sample_initial(n, generator) -> (n, state_dim)``: the task's initial-state distribution.
     * ``success(states, actions) -> (B,) bool`` on a whole trajectory (``states`` is ``(T+1, B, state_dim)``).
     * ``action_low`` / ``action_high``: per-action limits in the action's unit.
@@ -220,13 +248,21 @@ class System(abc.ABC):
         return torch.stack(cols, dim=-1)
 
     # ---- task -------------------------------------------------------------------------------------------
-    @abc.abstractmethod
     def running_cost(self, x: Tensor, u: Tensor) -> Tensor:
-        """Cost of one step, shape ``(B,)``."""
+        """Cost of one step, ``(stage_cost(x) + effort_cost(u)) * dt``, shape ``(B,)``."""
+        return (self.stage_cost(x) + self.effort_cost(u)) * self.dt
+
+    def terminal_cost(self, x: Tensor) -> Tensor:
+        """Cost of the final state, shape ``(B,)``; by default the stage cost with terminal weight 1."""
+        return self.stage_cost(x)
 
     @abc.abstractmethod
-    def terminal_cost(self, x: Tensor) -> Tensor:
-        """Cost of the final state, shape ``(B,)``."""
+    def stage_cost(self, x: Tensor) -> Tensor:
+        """Rate of the state's cost (per second of the horizon), shape ``(B,)``."""
+
+    @abc.abstractmethod
+    def effort_cost(self, u: Tensor) -> Tensor:
+        """Rate of the action's cost (per second of the horizon), shape ``(B,)``."""
 
     def sample_initial(self, n: int, generator: torch.Generator, dtype: torch.dtype = torch.float32) -> Tensor:
         """``n`` initial states from the task's distribution, shape ``(n, state_dim)``.

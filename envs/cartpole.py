@@ -15,39 +15,38 @@ from typing import Sequence
 import torch
 from torch import Tensor
 
-from envs.base import Quantity, System, check_record, scalar, unit, wrap_angle
+from envs.base import Quantity, System, bounded, check_record, scalar, unit, wrap_angle
 from envs.sketch import Box, Disc, Ground, Push, Segment, Trace
 
 
 @dataclass(frozen=True)
 class CartPoleParams:
-    cart_mass: float = unit("kg", 1.0)
-    pole_mass: float = unit("kg", 0.1)
-    half_length: float = unit("m", 0.5)
-    gravity: float = unit("m/s^2", 9.8)
-    force_limit: float = unit("N", 10.0)
+    cart_mass: float = unit("kg", 1.0, positive=True)
+    pole_mass: float = unit("kg", 0.1, positive=True)
+    half_length: float = unit("m", 0.5, positive=True)
+    gravity: float = unit("m/s^2", 9.8, positive=True)
+    force_limit: float = unit("N", 10.0, positive=True)
 
     def __post_init__(self) -> None:
-        check_record(self, positive=("cart_mass", "pole_mass", "half_length", "gravity", "force_limit"))
+        check_record(self)
 
 
 @dataclass(frozen=True)
 class CartPoleTask:
-    w_position: float = unit("1/m^2", 0.1)
-    w_angle: float = 1.0  # weight on (1 - cos th)
-    w_velocity: float = unit("s^2/m^2", 0.01)
-    w_angular_velocity: float = unit("s^2/rad^2", 0.01)
-    w_force: float = 0.01  # weight on (u / force_limit)^2
+    w_position: float = unit("1/m^2", 0.1, nonnegative=True)
+    w_angle: float = bounded(1.0, nonnegative=True)  # weight on (1 - cos th)
+    w_velocity: float = unit("s^2/m^2", 0.01, nonnegative=True)
+    w_angular_velocity: float = unit("s^2/rad^2", 0.01, nonnegative=True)
+    w_force: float = bounded(0.01, nonnegative=True)  # weight on (u / force_limit)^2
     init_low: tuple[float, ...] = (-0.5, -0.2, -0.2, -0.2)  # x (m), th (rad), xd (m/s), thd (rad/s)
     init_high: tuple[float, ...] = (0.5, 0.2, 0.2, 0.2)
-    track_limit: float = unit("m", 2.4)  # success: the cart never leaves |x| < track_limit
-    hold_time: float = unit("s", 1.0)  # ... and the pole is upright for the last hold_time seconds
-    angle_tolerance: float = unit("rad", 0.1)
-    position_tolerance: float = unit("m", 0.5)
+    track_limit: float = unit("m", 2.4, positive=True)  # success: the cart never leaves |x| < track_limit
+    hold_time: float = unit("s", 1.0, positive=True)  # ... and the pole is upright for the last hold_time seconds
+    angle_tolerance: float = unit("rad", 0.1, positive=True)
+    position_tolerance: float = unit("m", 0.5, positive=True)
 
     def __post_init__(self) -> None:
-        check_record(self, positive=("track_limit", "hold_time", "angle_tolerance", "position_tolerance"),
-                     nonnegative=("w_position", "w_angle", "w_velocity", "w_angular_velocity", "w_force"))
+        check_record(self)
 
 
 class CartPole(System):
@@ -75,16 +74,13 @@ class CartPole(System):
         xdd = (f + p.pole_mass * p.half_length * (thd ** 2 * s - thdd * c)) / total
         return torch.stack([xdd, thdd], dim=-1)
 
-    def running_cost(self, x: Tensor, u: Tensor) -> Tensor:
-        t = self.task
-        a = u[..., 0] / self.params.force_limit
-        return (t.w_position * x[..., 0] ** 2 + t.w_angle * (1 - torch.cos(x[..., 1])) + t.w_velocity * x[..., 2] ** 2
-                + t.w_angular_velocity * x[..., 3] ** 2 + t.w_force * a ** 2) * self.dt
-
-    def terminal_cost(self, x: Tensor) -> Tensor:
+    def stage_cost(self, x: Tensor) -> Tensor:
         t = self.task
         return (t.w_position * x[..., 0] ** 2 + t.w_angle * (1 - torch.cos(x[..., 1])) + t.w_velocity * x[..., 2] ** 2
                 + t.w_angular_velocity * x[..., 3] ** 2)
+
+    def effort_cost(self, u: Tensor) -> Tensor:
+        return self.task.w_force * (u[..., 0] / self.params.force_limit) ** 2
 
     def success(self, states: Tensor, actions: Tensor) -> Tensor:
         t = self.task

@@ -20,41 +20,39 @@ from typing import Sequence
 import torch
 from torch import Tensor
 
-from envs.base import Quantity, System, check_record, scalar, unit
+from envs.base import Quantity, System, bounded, check_record, scalar, unit
 from envs.sketch import Box, Ground, Polygon, Push, Segment, Trace
 
 
 @dataclass(frozen=True)
 class CraneParams:
-    trolley_mass: float = unit("kg", 5000.0)
-    load_mass: float = unit("kg", 10000.0)
-    rope_length: float = unit("m", 8.0)
-    gravity: float = unit("m/s^2", 9.81)
-    rolling_resistance: float = unit("N s/m", 500.0)
-    force_limit: float = unit("N", 15000.0)
+    trolley_mass: float = unit("kg", 5000.0, positive=True)
+    load_mass: float = unit("kg", 10000.0, positive=True)
+    rope_length: float = unit("m", 8.0, positive=True)
+    gravity: float = unit("m/s^2", 9.81, positive=True)
+    rolling_resistance: float = unit("N s/m", 500.0, nonnegative=True)
+    force_limit: float = unit("N", 15000.0, positive=True)
 
     def __post_init__(self) -> None:
-        check_record(self, positive=("trolley_mass", "load_mass", "rope_length", "gravity", "force_limit"),
-                     nonnegative=("rolling_resistance",))
+        check_record(self)
 
 
 @dataclass(frozen=True)
 class CraneTask:
     distance: float = unit("m", 10.0)  # where the trolley must stop
-    w_position: float = unit("1/m^2", 0.05)
-    w_sway: float = unit("1/rad^2", 10.0)
-    w_velocity: float = unit("s^2/m^2", 0.05)
-    w_sway_rate: float = unit("s^2/rad^2", 1.0)
-    w_force: float = 0.01  # weight on (F / force_limit)^2
+    w_position: float = unit("1/m^2", 0.05, nonnegative=True)
+    w_sway: float = unit("1/rad^2", 10.0, nonnegative=True)
+    w_velocity: float = unit("s^2/m^2", 0.05, nonnegative=True)
+    w_sway_rate: float = unit("s^2/rad^2", 1.0, nonnegative=True)
+    w_force: float = bounded(0.01, nonnegative=True)  # weight on (F / force_limit)^2
     init_low: tuple[float, ...] = (-0.5, -0.05, -0.1, -0.05)  # x (m), phi (rad), xd (m/s), phid (rad/s)
     init_high: tuple[float, ...] = (0.5, 0.05, 0.1, 0.05)
-    hold_time: float = unit("s", 2.0)  # success: for the last hold_time seconds ...
-    position_tolerance: float = unit("m", 0.1)  # ... the trolley within this of the target
-    sway_tolerance: float = unit("rad", 0.01)  # ... and the load swaying less than this (8 cm at 8 m)
+    hold_time: float = unit("s", 2.0, positive=True)  # success: for the last hold_time seconds ...
+    position_tolerance: float = unit("m", 0.1, positive=True)  # ... the trolley within this of the target
+    sway_tolerance: float = unit("rad", 0.01, positive=True)  # ... and the load swaying less than this (8 cm at 8 m)
 
     def __post_init__(self) -> None:
-        check_record(self, positive=("hold_time", "position_tolerance", "sway_tolerance"),
-                     nonnegative=("w_position", "w_sway", "w_velocity", "w_sway_rate", "w_force"))
+        check_record(self)
 
 
 class Crane(System):
@@ -86,17 +84,13 @@ class Crane(System):
         p = self.params
         return float((p.gravity * (p.trolley_mass + p.load_mass) / (p.trolley_mass * p.rope_length)) ** 0.5)
 
-    def _shape(self, x: Tensor) -> Tensor:
+    def stage_cost(self, x: Tensor) -> Tensor:
         t = self.task
         return (t.w_position * (x[..., 0] - t.distance) ** 2 + t.w_sway * 2 * (1 - torch.cos(x[..., 1]))
                 + t.w_velocity * x[..., 2] ** 2 + t.w_sway_rate * x[..., 3] ** 2)
 
-    def running_cost(self, x: Tensor, u: Tensor) -> Tensor:
-        a = u[..., 0] / self.params.force_limit
-        return (self._shape(x) + self.task.w_force * a ** 2) * self.dt
-
-    def terminal_cost(self, x: Tensor) -> Tensor:
-        return self._shape(x)
+    def effort_cost(self, u: Tensor) -> Tensor:
+        return self.task.w_force * (u[..., 0] / self.params.force_limit) ** 2
 
     def success(self, states: Tensor, actions: Tensor) -> Tensor:
         t = self.task

@@ -2,10 +2,12 @@
 
 With the action held over a step (zero-order hold) the exact discrete model is
 ``x' = A x + B u``, ``A = [[1, dt], [0, 1]]``, ``B = [[dt^2 / (2 m)], [dt / m]]`` (RK4 reproduces it exactly);
-semi-implicit Euler gives ``B = [[dt^2 / m], [dt / m]]``. The running cost is ``x'Qx + u'Ru`` and the terminal
-cost is ``x'Px`` with ``P`` from the discrete algebraic Riccati equation, so the finite-horizon problem has the
-infinite-horizon LQR gain as its optimal time-invariant policy (Bertsekas, *Dynamic Programming and Optimal
-Control*, vol. 1, sec. 4.1).
+semi-implicit Euler gives ``B = [[dt^2 / m], [dt / m]]``. Following the systems' convention the running cost is
+``(x'Qx + u'Ru) dt``, so the discrete LQ problem has the per-step weights ``Q dt`` and ``R dt``; the terminal
+cost is ``x'Px`` with ``P`` from the discrete algebraic Riccati equation of those weights, so the finite-horizon
+problem has the infinite-horizon LQR gain as its optimal time-invariant policy (Bertsekas, *Dynamic Programming
+and Optimal Control*, vol. 1, sec. 4.1). Scaling both weights by ``dt`` scales ``P`` by ``dt`` and leaves the
+gain ``(R + B'PB)^-1 B'PA`` unchanged.
 """
 
 from __future__ import annotations
@@ -25,24 +27,24 @@ from envs.sketch import Box, Ground, Push, Segment
 
 @dataclass(frozen=True)
 class DoubleIntegratorParams:
-    mass: float = unit("kg", 1.0)
-    force_limit: float = unit("N", 10.0)
+    mass: float = unit("kg", 1.0, positive=True)
+    force_limit: float = unit("N", 10.0, positive=True)
 
     def __post_init__(self) -> None:
-        check_record(self, positive=("mass", "force_limit"))
+        check_record(self)
 
 
 @dataclass(frozen=True)
 class DoubleIntegratorTask:
-    q_position: float = unit("1/m^2", 1.0)  # Q = diag(q_position, q_velocity)
-    q_velocity: float = unit("s^2/m^2", 0.1)
-    r_force: float = unit("1/N^2", 0.1)  # R
+    q_position: float = unit("1/m^2", 1.0, positive=True)  # Q = diag(q_position, q_velocity)
+    q_velocity: float = unit("s^2/m^2", 0.1, nonnegative=True)
+    r_force: float = unit("1/N^2", 0.1, positive=True)  # R
     init_low: tuple[float, ...] = (-2.0, -1.0)  # position (m), velocity (m/s)
     init_high: tuple[float, ...] = (2.0, 1.0)
-    tolerance: float = unit("m", 0.05)  # success: |position| and |velocity| below this at the end
+    tolerance: float = unit("m", 0.05, positive=True)  # success: |position| and |velocity| below this at the end
 
     def __post_init__(self) -> None:
-        check_record(self, positive=("q_position", "r_force", "tolerance"), nonnegative=("q_velocity",))
+        check_record(self)
 
 
 class DoubleIntegrator(System):
@@ -71,11 +73,13 @@ class DoubleIntegrator(System):
 
     @property
     def Q(self) -> np.ndarray:
-        return np.diag([self.task.q_position, self.task.q_velocity])
+        """Per-step state weight of the discrete LQ problem, ``diag(q_position, q_velocity) * dt``."""
+        return np.diag([self.task.q_position, self.task.q_velocity]) * self.dt
 
     @property
     def R(self) -> np.ndarray:
-        return np.array([[self.task.r_force]])
+        """Per-step action weight of the discrete LQ problem, ``r_force * dt``."""
+        return np.array([[self.task.r_force]]) * self.dt
 
     @cached_property
     def riccati(self) -> np.ndarray:
@@ -83,11 +87,15 @@ class DoubleIntegrator(System):
         a, b = self.linear_model()
         return scipy.linalg.solve_discrete_are(a, b, self.Q, self.R)
 
-    def running_cost(self, x: Tensor, u: Tensor) -> Tensor:
+    def stage_cost(self, x: Tensor) -> Tensor:
         t = self.task
-        return t.q_position * x[..., 0] ** 2 + t.q_velocity * x[..., 1] ** 2 + t.r_force * u[..., 0] ** 2
+        return t.q_position * x[..., 0] ** 2 + t.q_velocity * x[..., 1] ** 2
+
+    def effort_cost(self, u: Tensor) -> Tensor:
+        return self.task.r_force * u[..., 0] ** 2
 
     def terminal_cost(self, x: Tensor) -> Tensor:
+        """``x'Px``: the cost-to-go of the LQR policy, in place of the stage cost."""
         p = torch.as_tensor(self.riccati, dtype=x.dtype)
         return torch.einsum("bi,ij,bj->b", x, p, x)
 

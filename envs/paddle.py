@@ -30,27 +30,25 @@ from typing import Sequence
 import torch
 from torch import Tensor
 
-from envs.base import Quantity, System, check_record, scalar, unit
+from envs.base import Quantity, System, bounded, check_record, scalar, unit
 from envs.sketch import Box, Disc, Push, Segment, Trace
 from envs.contact import kelvin_voigt_restitution, normal_force
 
 
 @dataclass(frozen=True)
 class PaddleParams:
-    ball_mass: float = unit("kg", 0.05)
-    ball_radius: float = unit("m", 0.03)
-    paddle_mass: float = unit("kg", 0.5)
-    guide_friction: float = unit("N s/m", 1.0)  # viscous friction of the paddle's guide
-    gravity: float = unit("m/s^2", 9.81)
-    contact_stiffness: float = unit("N/m", 200.0)  # a soft foam ball: 2.5 mm static squash
-    contact_damping: float = unit("N s/m", 0.4)
-    contact_smoothing: float = unit("m", 2e-4)  # softplus width of the contact onset
-    force_limit: float = unit("N", 20.0)
+    ball_mass: float = unit("kg", 0.05, positive=True)
+    ball_radius: float = unit("m", 0.03, positive=True)
+    paddle_mass: float = unit("kg", 0.5, positive=True)
+    guide_friction: float = unit("N s/m", 1.0, nonnegative=True)  # viscous friction of the paddle's guide
+    gravity: float = unit("m/s^2", 9.81, positive=True)
+    contact_stiffness: float = unit("N/m", 200.0, positive=True)  # a soft foam ball: 2.5 mm static squash
+    contact_damping: float = unit("N s/m", 0.4, nonnegative=True)
+    contact_smoothing: float = unit("m", 2e-4, positive=True)  # softplus width of the contact onset
+    force_limit: float = unit("N", 20.0, positive=True)
 
     def __post_init__(self) -> None:
-        check_record(self, positive=("ball_mass", "ball_radius", "paddle_mass", "gravity", "contact_stiffness",
-                                     "contact_smoothing", "force_limit"),
-                     nonnegative=("guide_friction", "contact_damping"))
+        check_record(self)
 
     @property
     def effective_mass(self) -> float | Tensor:
@@ -65,18 +63,19 @@ class PaddleParams:
 
 @dataclass(frozen=True)
 class PaddleTask:
-    target: float = unit("m", 1.0)  # apex height of the ball's centre above the paddle's home position
-    w_apex: float = unit("1/m^2", 1.0)  # on (apex - target)^2
-    w_paddle: float = unit("1/m^2", 1.0)  # on p^2: stay near home
-    w_paddle_velocity: float = unit("s^2/m^2", 0.01)
-    w_force: float = 0.01  # on (u / force_limit)^2
+    target: float = unit("m", 1.0, positive=True)  # apex height of the ball's centre above the paddle's home position
+    w_apex: float = unit("1/m^2", 1.0, nonnegative=True)  # on (apex - target)^2
+    w_paddle: float = unit("1/m^2", 1.0, nonnegative=True)  # on p^2: stay near home
+    w_paddle_velocity: float = unit("s^2/m^2", 0.01, nonnegative=True)
+    w_force: float = bounded(0.01, nonnegative=True)  # on (u / force_limit)^2
     # ball height, paddle height (m), ball and paddle velocity (m/s): the ball is released above the paddle
     init_low: tuple[float, ...] = (0.4, -0.05, -0.5, -0.1)
     init_high: tuple[float, ...] = (1.2, 0.05, 0.5, 0.1)
-    hold_time: float = unit("s", 2.0)  # success: over the last hold_time seconds ...
-    apex_tolerance: float = unit("m", 0.1)  # ... every in-flight apex estimate within this of the target,
+    hold_time: float = unit("s", 2.0, positive=True)  # success: over the last hold_time seconds ...
+    # ... every in-flight apex estimate within this of the target,
+    apex_tolerance: float = unit("m", 0.1, positive=True)
     min_flight_fraction: float = 0.5  # ... the ball in flight at least this fraction of the time,
-    paddle_travel: float = unit("m", 0.2)  # ... and the paddle within this of home
+    paddle_travel: float = unit("m", 0.2, positive=True)  # ... and the paddle within this of home
 
     def __post_init__(self) -> None:
         if len(self.init_low) != 4 or len(self.init_high) != 4:
@@ -84,8 +83,7 @@ class PaddleTask:
                              f"got {len(self.init_low)} and {len(self.init_high)}")
         if not 0.0 < self.min_flight_fraction <= 1.0:
             raise ValueError(f"min_flight_fraction must be in (0, 1], got {self.min_flight_fraction}")
-        check_record(self, positive=("target", "hold_time", "apex_tolerance", "paddle_travel"),
-                     nonnegative=("w_apex", "w_paddle", "w_paddle_velocity", "w_force"))
+        check_record(self)
 
 
 class Paddle(System):
@@ -126,17 +124,13 @@ class Paddle(System):
         """Height (m) the ball's centre would reach in free flight from ``x``: ``z + zd^2 / (2 g)``, ``(B,)``."""
         return x[..., 0] + x[..., 2] ** 2 / (2 * self.params.gravity)
 
-    def _shape(self, x: Tensor) -> Tensor:
+    def stage_cost(self, x: Tensor) -> Tensor:
         t = self.task
         return (t.w_apex * (self.apex(x) - t.target) ** 2 + t.w_paddle * x[..., 1] ** 2
                 + t.w_paddle_velocity * x[..., 3] ** 2)
 
-    def running_cost(self, x: Tensor, u: Tensor) -> Tensor:
-        a = u[..., 0] / self.params.force_limit
-        return (self._shape(x) + self.task.w_force * a ** 2) * self.dt
-
-    def terminal_cost(self, x: Tensor) -> Tensor:
-        return self._shape(x)
+    def effort_cost(self, u: Tensor) -> Tensor:
+        return self.task.w_force * (u[..., 0] / self.params.force_limit) ** 2
 
     def success(self, states: Tensor, actions: Tensor) -> Tensor:
         t = self.task

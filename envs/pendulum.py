@@ -14,36 +14,35 @@ from typing import Sequence
 import torch
 from torch import Tensor
 
-from envs.base import Quantity, System, check_record, scalar, unit, wrap_angle
+from envs.base import Quantity, System, bounded, check_record, scalar, unit, wrap_angle
 from envs.sketch import Disc, Segment, Trace, Twist
 
 
 @dataclass(frozen=True)
 class PendulumParams:
-    mass: float = unit("kg", 1.0)
-    length: float = unit("m", 1.0)
-    gravity: float = unit("m/s^2", 9.81)
-    damping: float = unit("N m s/rad", 0.01)
-    torque_limit: float = unit("N m", 3.0)
+    mass: float = unit("kg", 1.0, positive=True)
+    length: float = unit("m", 1.0, positive=True)
+    gravity: float = unit("m/s^2", 9.81, positive=True)
+    damping: float = unit("N m s/rad", 0.01, nonnegative=True)
+    torque_limit: float = unit("N m", 3.0, positive=True)
 
     def __post_init__(self) -> None:
-        check_record(self, positive=("mass", "length", "gravity", "torque_limit"), nonnegative=("damping",))
+        check_record(self)
 
 
 @dataclass(frozen=True)
 class PendulumTask:
-    w_angle: float = 1.0  # weight on (1 - cos th)
-    w_velocity: float = unit("s^2/rad^2", 0.01)
-    w_torque: float = 0.01  # weight on (u / torque_limit)^2
+    w_angle: float = bounded(1.0, nonnegative=True)  # weight on (1 - cos th)
+    w_velocity: float = unit("s^2/rad^2", 0.01, nonnegative=True)
+    w_torque: float = bounded(0.01, nonnegative=True)  # weight on (u / torque_limit)^2
     init_low: tuple[float, ...] = (-math.pi, -1.0)  # angle (rad), angular velocity (rad/s)
     init_high: tuple[float, ...] = (math.pi, 1.0)
-    hold_time: float = unit("s", 1.0)  # success: upright for the last hold_time seconds
-    angle_tolerance: float = unit("rad", 0.1)
-    velocity_tolerance: float = unit("rad/s", 0.5)
+    hold_time: float = unit("s", 1.0, positive=True)  # success: upright for the last hold_time seconds
+    angle_tolerance: float = unit("rad", 0.1, positive=True)
+    velocity_tolerance: float = unit("rad/s", 0.5, positive=True)
 
     def __post_init__(self) -> None:
-        check_record(self, positive=("hold_time", "angle_tolerance", "velocity_tolerance"),
-                     nonnegative=("w_angle", "w_velocity", "w_torque"))
+        check_record(self)
 
 
 class Pendulum(System):
@@ -71,14 +70,12 @@ class Pendulum(System):
         p = self.params
         return 0.5 * p.mass * p.length ** 2 * x[..., 1] ** 2 + p.mass * p.gravity * p.length * (1 + torch.cos(x[..., 0]))
 
-    def running_cost(self, x: Tensor, u: Tensor) -> Tensor:
-        t = self.task
-        a = u[..., 0] / self.params.torque_limit
-        return (t.w_angle * (1 - torch.cos(x[..., 0])) + t.w_velocity * x[..., 1] ** 2 + t.w_torque * a ** 2) * self.dt
-
-    def terminal_cost(self, x: Tensor) -> Tensor:
+    def stage_cost(self, x: Tensor) -> Tensor:
         t = self.task
         return t.w_angle * (1 - torch.cos(x[..., 0])) + t.w_velocity * x[..., 1] ** 2
+
+    def effort_cost(self, u: Tensor) -> Tensor:
+        return self.task.w_torque * (u[..., 0] / self.params.torque_limit) ** 2
 
     def success(self, states: Tensor, actions: Tensor) -> Tensor:
         w = self.final_window(states, self.task.hold_time)

@@ -40,33 +40,31 @@ from typing import Sequence
 import torch
 from torch import Tensor
 
-from envs.base import Quantity, System, check_record, scalar, unit
+from envs.base import Quantity, System, bounded, check_record, scalar, unit
 from envs.sketch import Box, Disc, Ground, Push, Segment, Trace
 from envs.contact import friction_force, normal_force
 
 
 @dataclass(frozen=True)
 class PogoParams:
-    body_mass: float = unit("kg", 1.5)
-    foot_mass: float = unit("kg", 0.5)
-    leg_rest_length: float = unit("m", 0.5)
-    leg_stiffness: float = unit("N/m", 400.0)
-    leg_damping: float = unit("N s/m", 1.0)
-    body_radius: float = unit("m", 0.1)
-    gravity: float = unit("m/s^2", 9.81)
-    contact_stiffness: float = unit("N/m", 1500.0)  # the mat under foot and body
-    contact_damping: float = unit("N s/m", 20.0)  # zeta ~ 0.4 for the foot: a dead landing, little rebound
-    contact_smoothing: float = unit("m", 1e-3)  # softplus width of the contact onset
-    friction_coefficient: float = 1.0
-    friction_smoothing: float = unit("m/s", 0.3)  # slip speed over which friction reverses
-    thrust_limit: float = unit("N", 40.0)  # leg actuator, about twice the weight
-    swing_limit: float = unit("N", 10.0)
+    body_mass: float = unit("kg", 1.5, positive=True)
+    foot_mass: float = unit("kg", 0.5, positive=True)
+    leg_rest_length: float = unit("m", 0.5, positive=True)
+    leg_stiffness: float = unit("N/m", 400.0, positive=True)
+    leg_damping: float = unit("N s/m", 1.0, nonnegative=True)
+    body_radius: float = unit("m", 0.1, positive=True)
+    gravity: float = unit("m/s^2", 9.81, positive=True)
+    contact_stiffness: float = unit("N/m", 1500.0, positive=True)  # the mat under foot and body
+    # zeta ~ 0.4 for the foot: a dead landing, little rebound
+    contact_damping: float = unit("N s/m", 20.0, nonnegative=True)
+    contact_smoothing: float = unit("m", 1e-3, positive=True)  # softplus width of the contact onset
+    friction_coefficient: float = bounded(1.0, nonnegative=True)
+    friction_smoothing: float = unit("m/s", 0.3, positive=True)  # slip speed over which friction reverses
+    thrust_limit: float = unit("N", 40.0, positive=True)  # leg actuator, about twice the weight
+    swing_limit: float = unit("N", 10.0, positive=True)
 
     def __post_init__(self) -> None:
-        check_record(self, positive=("body_mass", "foot_mass", "leg_rest_length", "leg_stiffness", "body_radius",
-                                     "gravity", "contact_stiffness", "contact_smoothing", "friction_smoothing",
-                                     "thrust_limit", "swing_limit"),
-                     nonnegative=("leg_damping", "contact_damping", "friction_coefficient"))
+        check_record(self)
 
     @property
     def standing_height(self) -> float | Tensor:
@@ -79,24 +77,24 @@ class PogoParams:
 @dataclass(frozen=True)
 class PogoTask:
     mark: float = unit("m", 1.0)  # where the body must end up
-    w_position: float = unit("1/m^2", 1.0)
-    w_sag: float = unit("1/m^2", 20.0)  # on max(standing height - z, 0)^2: crouching or fallen; hopping is free
-    w_lean: float = unit("1/m^2", 0.5)  # on fx^2: keep the foot roughly under the body
-    w_velocity: float = unit("s^2/m^2", 0.1)  # terminal only: arrive at rest
-    w_effort: float = 0.01  # on the actions over their limits, squared
+    w_position: float = unit("1/m^2", 1.0, nonnegative=True)
+    # on max(standing height - z, 0)^2: crouching or fallen; hopping is free
+    w_sag: float = unit("1/m^2", 20.0, nonnegative=True)
+    w_lean: float = unit("1/m^2", 0.5, nonnegative=True)  # on fx^2: keep the foot roughly under the body
+    w_velocity: float = unit("s^2/m^2", 0.1, nonnegative=True)  # terminal only: arrive at rest
+    w_effort: float = bounded(0.01, nonnegative=True)  # on the actions over their limits, squared
     # x, z, fx, fz (m), then their rates (m/s): dropped from up to 5 cm, the leg within ~0.1 rad of vertical
     init_low: tuple[float, ...] = (-0.1, 0.48, -0.05, -0.5, -0.1, -0.1, -0.1, -0.1)
     init_high: tuple[float, ...] = (0.1, 0.53, 0.05, -0.48, 0.1, 0.1, 0.1, 0.1)
-    hold_time: float = unit("s", 0.5)  # success: for the last hold_time seconds ...
-    position_tolerance: float = unit("m", 0.15)  # ... the body within this of the mark
-    min_height: float = unit("m", 0.3)  # ... and never lower than this (it has not fallen)
+    hold_time: float = unit("s", 0.5, positive=True)  # success: for the last hold_time seconds ...
+    position_tolerance: float = unit("m", 0.15, positive=True)  # ... the body within this of the mark
+    min_height: float = unit("m", 0.3, positive=True)  # ... and never lower than this (it has not fallen)
 
     def __post_init__(self) -> None:
         if len(self.init_low) != 8 or len(self.init_high) != 8:
             raise ValueError(f"init_low and init_high must have 8 entries (x, z, fx, fz and rates), got "
                              f"{len(self.init_low)} and {len(self.init_high)}")
-        check_record(self, positive=("hold_time", "position_tolerance", "min_height"),
-                     nonnegative=("w_position", "w_sag", "w_lean", "w_velocity", "w_effort"))
+        check_record(self)
 
 
 class Pogo(System):
@@ -152,18 +150,18 @@ class Pogo(System):
             frac = frac.unsqueeze(-1)
         return x[..., 0:2] + frac * x[..., 2:4]
 
-    def _shape(self, x: Tensor) -> Tensor:
+    def stage_cost(self, x: Tensor) -> Tensor:
         t = self.task
         sag = torch.relu(self.params.standing_height - x[..., 1])  # squared below: continuously differentiable
         return t.w_position * (x[..., 0] - t.mark) ** 2 + t.w_sag * sag ** 2 + t.w_lean * x[..., 2] ** 2
 
-    def running_cost(self, x: Tensor, u: Tensor) -> Tensor:
+    def effort_cost(self, u: Tensor) -> Tensor:
         p = self.params
-        effort = (u[..., 0] / p.thrust_limit) ** 2 + (u[..., 1] / p.swing_limit) ** 2
-        return (self._shape(x) + self.task.w_effort * effort) * self.dt
+        return self.task.w_effort * ((u[..., 0] / p.thrust_limit) ** 2 + (u[..., 1] / p.swing_limit) ** 2)
 
     def terminal_cost(self, x: Tensor) -> Tensor:
-        return self._shape(x) + self.task.w_velocity * (x[..., 4] ** 2 + x[..., 5] ** 2)
+        """The stage cost plus ``w_velocity`` on the body's speed: arrive at rest."""
+        return self.stage_cost(x) + self.task.w_velocity * (x[..., 4] ** 2 + x[..., 5] ** 2)
 
     def success(self, states: Tensor, actions: Tensor) -> Tensor:
         t = self.task

@@ -16,41 +16,40 @@ from typing import Sequence
 import torch
 from torch import Tensor
 
-from envs.base import Quantity, System, check_record, scalar, unit
+from envs.base import Quantity, System, bounded, check_record, scalar, unit
 from envs.sketch import Box, Disc, Ground, Push, Segment, Trace
 
 
 @dataclass(frozen=True)
 class QuadrotorParams:
-    mass: float = unit("kg", 0.8)
-    arm_length: float = unit("m", 0.15)
-    inertia: float = unit("kg m^2", 0.01)
-    gravity: float = unit("m/s^2", 9.81)
-    thrust_limit: float = unit("N", 8.0)  # per rotor; two rotors give about twice the weight
+    mass: float = unit("kg", 0.8, positive=True)
+    arm_length: float = unit("m", 0.15, positive=True)
+    inertia: float = unit("kg m^2", 0.01, positive=True)
+    gravity: float = unit("m/s^2", 9.81, positive=True)
+    thrust_limit: float = unit("N", 8.0, positive=True)  # per rotor; two rotors give about twice the weight
 
     def __post_init__(self) -> None:
-        check_record(self, positive=("mass", "arm_length", "inertia", "gravity", "thrust_limit"))
+        check_record(self)
 
 
 @dataclass(frozen=True)
 class QuadrotorTask:
     target: tuple[float, ...] = (0.0, 1.0)  # hover point above the pad: x (m), z (m)
-    w_position: float = unit("1/m^2", 1.0)
-    w_pitch: float = unit("1/rad^2", 0.1)
-    w_velocity: float = unit("s^2/m^2", 0.1)
-    w_pitch_rate: float = unit("s^2/rad^2", 0.01)
-    w_thrust: float = 0.01  # weight on ((T - hover) / thrust_limit)^2 per rotor
+    w_position: float = unit("1/m^2", 1.0, nonnegative=True)
+    w_pitch: float = unit("1/rad^2", 0.1, nonnegative=True)
+    w_velocity: float = unit("s^2/m^2", 0.1, nonnegative=True)
+    w_pitch_rate: float = unit("s^2/rad^2", 0.01, nonnegative=True)
+    w_thrust: float = bounded(0.01, nonnegative=True)  # weight on ((T - hover) / thrust_limit)^2 per rotor
     init_low: tuple[float, ...] = (-2.0, 0.5, -0.3, -0.5, -0.5, -0.5)  # x, z (m), th (rad), rates (m/s, rad/s)
     init_high: tuple[float, ...] = (2.0, 2.5, 0.3, 0.5, 0.5, 0.5)
-    hold_time: float = unit("s", 1.0)  # success: for the last hold_time seconds ...
-    position_tolerance: float = unit("m", 0.1)  # ... within this distance of the hover point
-    speed_tolerance: float = unit("m/s", 0.2)  # ... and slower than this
+    hold_time: float = unit("s", 1.0, positive=True)  # success: for the last hold_time seconds ...
+    position_tolerance: float = unit("m", 0.1, positive=True)  # ... within this distance of the hover point
+    speed_tolerance: float = unit("m/s", 0.2, positive=True)  # ... and slower than this
 
     def __post_init__(self) -> None:
         if len(self.target) != 2:
             raise ValueError(f"target must be (x, z) in m, got {self.target}")
-        check_record(self, positive=("hold_time", "position_tolerance", "speed_tolerance"),
-                     nonnegative=("w_position", "w_pitch", "w_velocity", "w_pitch_rate", "w_thrust"))
+        check_record(self)
 
 
 class Quadrotor(System):
@@ -85,23 +84,19 @@ class Quadrotor(System):
         thdd = p.arm_length * (t2 - t1) / p.inertia
         return torch.stack([xdd, zdd, thdd], dim=-1)
 
-    def _shape(self, x: Tensor) -> Tensor:
+    def stage_cost(self, x: Tensor) -> Tensor:
         t = self.task
         ex, ez = x[..., 0] - t.target[0], x[..., 1] - t.target[1]
         return (t.w_position * (ex ** 2 + ez ** 2) + t.w_pitch * (1 - torch.cos(x[..., 2])) * 2
                 + t.w_velocity * (x[..., 3] ** 2 + x[..., 4] ** 2) + t.w_pitch_rate * x[..., 5] ** 2)
 
-    def running_cost(self, x: Tensor, u: Tensor) -> Tensor:
+    def effort_cost(self, u: Tensor) -> Tensor:
         p = self.params
         hover = p.mass * p.gravity / 2  # per row when the parameters are per-batch tensors
         if isinstance(hover, Tensor):
             hover = hover.unsqueeze(-1)
         limit = p.thrust_limit.unsqueeze(-1) if isinstance(p.thrust_limit, Tensor) else p.thrust_limit
-        a = (u - hover) / limit
-        return (self._shape(x) + self.task.w_thrust * (a ** 2).sum(dim=-1)) * self.dt
-
-    def terminal_cost(self, x: Tensor) -> Tensor:
-        return self._shape(x)
+        return self.task.w_thrust * (((u - hover) / limit) ** 2).sum(dim=-1)
 
     def success(self, states: Tensor, actions: Tensor) -> Tensor:
         t = self.task

@@ -31,7 +31,7 @@ LINEAR = PolicySettings(kind="linear", bias=False, normalise="none", squash="non
 def _lq_gradient(k: np.ndarray, xs: np.ndarray, dt: float = 0.1) -> np.ndarray:
     """``2 (R K + B'P (A + BK)) S`` with ``S = mean x x'``: the one-step quadratic's gradient."""
     a, b = np.array([[1.0, dt], [0.0, 1.0]]), np.array([[dt ** 2 / 2], [dt]])
-    q, r = np.diag([1.0, 0.1]), np.array([[0.1]])
+    q, r = np.diag([1.0, 0.1]) * dt, np.array([[0.1]]) * dt  # the running cost is (x'Qx + u'Ru) dt
     p = scipy.linalg.solve_discrete_are(a, b, q, r)
     return (2 * (r @ k + b.T @ p @ (a + b @ k)) @ (xs.T @ xs / xs.shape[0])).reshape(-1)
 

@@ -43,10 +43,12 @@ def zoh_model(dt: float, mass: float) -> tuple[np.ndarray, np.ndarray]:
 
 
 def lqr(system) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
-    """(A, B, Q, R, K) of the double integrator's task; K = (R + B'PB)^-1 B'PA with P from scipy's DARE."""
+    """(A, B, Q, R, K) of the double integrator's task; K = (R + B'PB)^-1 B'PA with P from scipy's DARE.
+
+    The running cost is (x'Qx + u'Ru) dt, so the discrete problem's per-step weights are the task's times dt."""
     a, b = zoh_model(system.dt, system.params.mass)
-    q = np.diag([system.task.q_position, system.task.q_velocity])
-    r = np.array([[system.task.r_force]])
+    q = np.diag([system.task.q_position, system.task.q_velocity]) * system.dt
+    r = np.array([[system.task.r_force]]) * system.dt
     p = scipy.linalg.solve_discrete_are(a, b, q, r)
     return a, b, q, r, np.linalg.solve(r + b.T @ p @ b, b.T @ p @ a)
 

@@ -1,7 +1,8 @@
 """Gradient estimators against closed forms, against each other, and against their own accounting.
 
 Reference problem (closed form): the double integrator ``x' = A x + B u`` (zero-order hold of ``xdd = u`` with
-m = 1 kg, which RK4 reproduces exactly), one step, linear policy ``u = K x``. Its minibatch objective
+m = 1 kg, which RK4 reproduces exactly), one step, linear policy ``u = K x``; ``Q`` and ``R`` are the per-step
+weights, the task's times dt (the running cost is ``(x'Qx + u'Ru) dt``). Its minibatch objective
 ``J(K) = mean_x [x'Qx + x'K'RKx + x'(A + BK)' P (A + BK) x]`` is a quadratic in the parameters ``K`` with
 ``grad J = 2 (R K + B'P (A + BK)) S``, ``S = mean_x x x'`` (matrix calculus, e.g. Petersen & Pedersen, *The
 Matrix Cookbook*, eqs. 78-82). For a quadratic, Gaussian smoothing in parameters leaves the gradient unchanged
@@ -51,7 +52,7 @@ def lq_problem(batch: int = 32):
 def closed_form_gradient(x0: torch.Tensor) -> np.ndarray:
     a = np.array([[1.0, DT], [0.0, 1.0]])
     b = np.array([[DT ** 2 / 2], [DT]])
-    q, r = np.diag([1.0, 0.1]), np.array([[0.1]])
+    q, r = np.diag([1.0, 0.1]) * DT, np.array([[0.1]]) * DT  # the running cost is (x'Qx + u'Ru) dt
     p = scipy.linalg.solve_discrete_are(a, b, q, r)
     k = np.array(K0)
     xs = x0.numpy()

@@ -464,11 +464,17 @@ def test_double_integrator_step_jacobians_are_the_zoh_model(integrator, dt, mass
 @pytest.mark.parametrize("integrator, dt, mass", DI_CASES)
 def test_double_integrator_riccati_solves_the_dare(integrator, dt, mass):
     # DARE: P = A'PA - A'PB (R + B'PB)^-1 B'PA + Q (Bertsekas, Dynamic Programming and Optimal Control, vol. 1,
-    # sec. 4.1); reference solution scipy.linalg.solve_discrete_are on the A, B derived in this file.
+    # sec. 4.1); reference solution scipy.linalg.solve_discrete_are on the A, B derived in this file. The running
+    # cost is (x'Qx + u'Ru) dt, so the discrete problem's weights are Q dt and R dt.
     system = DoubleIntegrator(DoubleIntegratorParams(mass=mass), dt=dt, integrator=integrator)
     a, b = double_integrator_ab(integrator, dt, mass)
-    q, r = np.diag([system.task.q_position, system.task.q_velocity]), np.array([[system.task.r_force]])
+    q_rate, r_rate = np.diag([system.task.q_position, system.task.q_velocity]), np.array([[system.task.r_force]])
+    q, r = q_rate * dt, r_rate * dt
     p = system.riccati
+    # the running cost is the quadrature of the cost rate with these weights
+    x0, u0 = torch.tensor([[0.4, -0.7]], dtype=F64), torch.tensor([[1.5]], dtype=F64)
+    expected_running = float(x0[0] @ torch.from_numpy(q) @ x0[0] + u0[0] @ torch.from_numpy(r) @ u0[0])
+    assert float(system.running_cost(x0, u0)) == pytest.approx(expected_running, rel=1e-14)
     residual = a.T @ p @ a - a.T @ p @ b @ np.linalg.solve(r + b.T @ p @ b, b.T @ p @ a) + q - p
     scale = np.abs(p).max()
     # 1e-10 relative to |P|: the DARE solver is backward stable (~1e-13); a model rounded through float32 or a
@@ -477,6 +483,12 @@ def test_double_integrator_riccati_solves_the_dare(integrator, dt, mass):
                                atol=1e-10)
     torch.testing.assert_close(torch.from_numpy(p), torch.from_numpy(scipy.linalg.solve_discrete_are(a, b, q, r)),
                                rtol=1e-10, atol=1e-12)
+    # Scaling Q and R by dt scales the DARE's P by dt and leaves the LQR gain (R + B'PB)^-1 B'PA unchanged.
+    p_rate = scipy.linalg.solve_discrete_are(a, b, q_rate, r_rate)
+    torch.testing.assert_close(torch.from_numpy(p), torch.from_numpy(dt * p_rate), rtol=1e-10, atol=1e-12)
+    gain = np.linalg.solve(r + b.T @ p @ b, b.T @ p @ a)
+    gain_rate = np.linalg.solve(r_rate + b.T @ p_rate @ b, b.T @ p_rate @ a)
+    torch.testing.assert_close(torch.from_numpy(gain), torch.from_numpy(gain_rate), rtol=1e-9, atol=1e-12)
     # P is symmetric positive definite (the LQR value function is a positive quadratic form)
     assert np.allclose(p, p.T) and (np.linalg.eigvalsh(p) > 0).all()
     # the terminal cost is x'Px
