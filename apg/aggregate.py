@@ -1,8 +1,8 @@
 """Summaries of a multirun: held-out cost and success rate per setting, across seeds, with confidence intervals.
 
 A multirun directory (``apg-train --multirun ...``, any launcher) holds one directory per job, each with the
-``config.yaml`` and ``metrics.json`` the trainer wrote. Jobs whose configs differ only in ``seed`` (and in the
-runtime keys ``resume``, ``progress``, ``threads``) are one *setting*. For each setting and metric the summary
+``config.yaml`` (its run record) and ``metrics.json`` the training loop wrote. Jobs whose records differ only in
+``seed``, the code version and the runtime fields (``apg.runs.PER_SEED_KEYS``) are one *setting*. For each setting and metric the summary
 gives the number of seeds ``n``, the mean, the sample standard deviation ``s`` and the two-sided Student-t
 confidence interval ``mean +- t_{(1+c)/2, n-1} s / sqrt(n)`` (Student 1908, "The probable error of a mean",
 Biometrika 6(1):1-25). The interval treats the per-seed results as independent draws from a normal
@@ -23,8 +23,10 @@ from typing import Any, Iterable, Sequence
 import yaml
 from scipy import stats
 
+from apg.runs import PER_SEED_KEYS
+
 METRICS = {"eval_cost": "held-out cost", "success_rate": "held-out success rate"}
-IGNORED_KEYS = ("seed", "resume", "progress", "threads")  # differ between seeds of one setting, or change nothing
+IGNORED_KEYS = PER_SEED_KEYS  # differ between the seeds of one setting, or change nothing (apg.runs)
 
 
 @dataclass(frozen=True)

@@ -12,9 +12,10 @@ from typing import Any
 import torch
 
 FORMAT = "apg-checkpoint"
-VERSION = 1
+VERSION = 2  # 2: the run record (apg.runs.RunRecord) replaced the raw config
 CHECKPOINT_NAME = "checkpoint.pt"
-REQUIRED = ("format", "version", "iteration", "policy", "policy_settings", "optimiser", "generator", "system")
+REQUIRED = ("format", "version", "record", "iteration", "policy", "update", "generator", "torch_rng", "env_steps",
+            "wall_time_s")
 
 
 class CheckpointError(RuntimeError):
@@ -61,20 +62,18 @@ def load_checkpoint(path: Path) -> dict[str, Any]:
     if not path.exists():
         raise CheckpointError(f"no checkpoint at {path}")
     try:
-        state = torch.load(path, map_location="cpu", weights_only=False)
-    except Exception as e:  # torch raises several types for truncated or foreign files
-        raise CheckpointError(f"{path} is not a readable checkpoint ({type(e).__name__}: {e}); it may be truncated "
-                              f"or from another program") from None
+        # weights_only: tensors and plain containers only. A file a user hands us is data, never code: a pickle
+        # that would construct anything else (and so could run code) is refused, not executed.
+        state = torch.load(path, map_location="cpu", weights_only=True)
+    except Exception as e:  # torch raises several types for truncated, foreign or code-carrying files
+        raise CheckpointError(f"{path} is not a readable checkpoint ({type(e).__name__}: {str(e).splitlines()[0]}); "
+                              f"it may be truncated, from another program, or carry code, which is never run") from None
     if not isinstance(state, dict) or state.get("format") != FORMAT:
         raise CheckpointError(f"{path} is not an apg checkpoint")
     if state.get("version") != VERSION:
-        raise CheckpointError(f"{path} has checkpoint version {state.get('version')}, this apg reads {VERSION}")
+        raise CheckpointError(f"{path} has checkpoint version {state.get('version')}, this apg reads {VERSION}: "
+                              f"it was written by another version of apg; train the run again with this one")
     missing = [k for k in REQUIRED if k not in state]
     if missing:
         raise CheckpointError(f"{path} lacks {missing}; it is incomplete")
     return state
-
-
-def config_digest(config: dict[str, Any]) -> str:
-    """A short, stable digest of a plain config mapping (sorted JSON, SHA-256)."""
-    return hashlib.sha256(json.dumps(config, sort_keys=True, default=str).encode()).hexdigest()[:16]

@@ -35,13 +35,13 @@ from torch import Tensor, nn
 from apg.estimators import ESTIMATORS, Analytic, EstimatorSettings, make_estimator
 from apg.optim import OptimSettings
 from apg.policies import PolicySettings, make_policy
-from apg.ppo import PPOSettings, train_ppo
 from apg.rollout import Evaluation, evaluate
-from apg.trainer import DTYPES, Monitor, NonFiniteError, RunInfo, TrainSettings, train
+from apg.runs import DTYPES, RunRecord, SystemSpec, TrainSettings
+from apg.train import Monitor, RunInfo, train_record
+from apg.updates import GradientUpdate, NonFiniteError, PPOSettings, PPOUpdate, Update
 from envs.base import System, check_record
 
 log = logging.getLogger(__name__)
-METHODS = ("gradient", "ppo")
 
 
 # ---- records ---------------------------------------------------------------------------------------------------
@@ -104,37 +104,41 @@ class RaceSettings:
 
 @dataclass(frozen=True)
 class Entrant:
-    """One method in the race: the trainer with a gradient estimator, or PPO; its own optimiser and loop settings."""
+    """One method in the race: an update (a gradient estimator's settings, or PPO's) with its own optimiser and
+    loop settings; every entrant trains in the same loop (:func:`apg.train.train_record`)."""
 
     label: str
-    method: str  # gradient | ppo
+    update: EstimatorSettings | PPOSettings
     optim: OptimSettings
     train: TrainSettings  # iterations, eval_every and the budget fields are set by the race
-    estimator: EstimatorSettings | None = None  # method == gradient
-    ppo: PPOSettings | None = None  # method == ppo
 
-    def __post_init__(self) -> None:
-        if self.method not in METHODS:
-            raise ValueError(f"entrant {self.label}: method must be one of {', '.join(METHODS)}; got {self.method!r}")
-        if self.method == "gradient" and self.estimator is None:
-            raise ValueError(f"entrant {self.label}: method=gradient needs an estimator")
-        if self.method == "ppo" and self.ppo is None:
-            raise ValueError(f"entrant {self.label}: method=ppo needs ppo settings")
+    @property
+    def method(self) -> str:
+        return "ppo" if isinstance(self.update, PPOSettings) else "gradient"
+
+    @property
+    def estimator(self) -> EstimatorSettings | None:
+        return self.update if isinstance(self.update, EstimatorSettings) else None
+
+    @property
+    def ppo(self) -> PPOSettings | None:
+        return self.update if isinstance(self.update, PPOSettings) else None
+
+    def _update(self) -> Update:
+        """The update, built without warnings (they come once, when the entrant trains)."""
+        if isinstance(self.update, PPOSettings):
+            return PPOUpdate(self.update)
+        return GradientUpdate(ESTIMATORS[self.update.name](self.update))  # type: ignore[call-arg]
 
     @property
     def steps_per_iteration(self) -> int:
         """Simulator steps per iteration, averaged over a horizon schedule (``train.horizon_start``) if any."""
-        if self.method == "ppo":
-            return self.train.batch_size * self.train.horizon
-        estimator = ESTIMATORS[self.estimator.name](self.estimator)  # type: ignore[call-arg]
-        full = estimator.steps_per_estimate(self.train.batch_size, self.train.horizon)
+        full = self._update().steps_per_iteration(self.train.batch_size, self.train.horizon)
         return max(1, round(full * self.train.mean_horizon / self.train.horizon))
 
     @property
     def description(self) -> str:
-        if self.method == "ppo":
-            return "PPO + GAE (model-free)"
-        title = ESTIMATORS[self.estimator.name](self.estimator).title or self.estimator.name  # type: ignore[call-arg]
+        title = self._update().title
         extras = []
         if self.train.horizon_start:
             extras.append(f"horizon {self.train.horizon_start} to {self.train.horizon} steps")
@@ -322,16 +326,18 @@ def _race_settings(entrant: Entrant, budget: str, settings: RaceSettings, iterat
                                max_wall_seconds=settings.budget_seconds if budget == "seconds" else 0.0)
 
 
-def _one_run(system: System, policy_settings: PolicySettings, entrant: Entrant, train_settings: TrainSettings,
-             seed: int, run_dir: Path, monitors: Sequence[Monitor], config: dict[str, Any]) -> str:
-    """Train one entrant once; returns ``"ok"`` or ``"diverged: ..."``."""
+def _record(system: System, policy_settings: PolicySettings, entrant: Entrant, train_settings: TrainSettings,
+            seed: int) -> RunRecord:
+    """The run record of one race run: the race's system and policy, the entrant's update, optimiser and loop."""
+    update = entrant.ppo if entrant.method == "ppo" else entrant.estimator
+    return RunRecord(SystemSpec.of(system), policy_settings, entrant.optim, update, train_settings, seed,
+                     experiment=f"race entrant {entrant.label}")
+
+
+def _one_run(record: RunRecord, run_dir: Path, monitors: Sequence[Monitor]) -> str:
+    """Train one entrant once, in the one training loop; returns ``"ok"`` or ``"diverged: ..."``."""
     try:
-        if entrant.method == "ppo":
-            train_ppo(system, policy_settings, entrant.optim, entrant.ppo, train_settings, seed=seed,
-                      run_dir=run_dir, config=config, monitors=monitors)
-        else:
-            train(system, policy_settings, entrant.optim, make_estimator(entrant.estimator), train_settings,
-                  seed=seed, run_dir=run_dir, config=config, monitors=monitors)
+        train_record(record, run_dir, monitors=monitors)
     except NonFiniteError as e:
         return f"diverged: {str(e).split('.')[0]}"
     return "ok"
@@ -368,13 +374,8 @@ def run_race(system: System, policy_settings: PolicySettings, entrants: Sequence
                 run_dir = Path(out_dir) / "race" / budget / entrant.label / f"seed{seed}"
                 recorder = _Recorder(evaluation_schedule(iterations, settings.evaluations))
                 extra = list(monitors(budget, entrant, seed, run_dir)) if monitors else []
-                config = {"entrant": entrant.label, "budget": budget, "seed": seed, "system": system.name,
-                          "method": entrant.method, "policy": dataclasses.asdict(policy_settings),
-                          "optim": dataclasses.asdict(entrant.optim), "train": dataclasses.asdict(train_settings),
-                          "estimator": dataclasses.asdict(entrant.estimator) if entrant.estimator else None,
-                          "ppo": dataclasses.asdict(entrant.ppo) if entrant.ppo else None}
-                status = _one_run(system, policy_settings, entrant, train_settings, seed, run_dir,
-                                  [recorder, *extra], config)
+                record = _record(system, policy_settings, entrant, train_settings, seed)
+                status = _one_run(record, run_dir, [recorder, *extra])
                 if budget == "steps" and recorder.compute > 0:
                     speed.setdefault(entrant.label, []).append(recorder.iterations / recorder.compute)
                 speed.setdefault(entrant.label, [])

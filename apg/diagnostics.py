@@ -24,6 +24,7 @@ tame that chain.
 from __future__ import annotations
 
 import dataclasses
+import functools
 import math
 import numbers
 from dataclasses import dataclass
@@ -32,6 +33,7 @@ import torch
 from torch import Tensor, nn
 from torch.func import functional_call
 
+from apg.rollout import rollout
 from envs.base import System
 
 # Sums the amplification divides by are floored at this share of their largest value (and at float64's smallest
@@ -199,23 +201,15 @@ def _costates(system: System, policy: nn.Module, x0: Tensor, horizon: int) -> tu
     """``dC/dx_t`` ``(T+1, B, state_dim)`` and ``dC/du_t`` ``(T, B, action_dim)`` from one reverse pass, and the
     states ``(T+1, B, state_dim)``.
 
-    Mirrors :func:`apg.rollout.rollout`: ``u = pi(observe(x))``, running cost ``c(x, u)``, ``x' = step(x, u)``,
+    From :func:`apg.rollout.rollout` with its own state tensors kept: ``u = pi(observe(x))``, running cost ``c(x, u)``, ``x' = step(x, u)``,
     terminal cost at ``x_T``. The gradient with respect to the intermediate tensor ``x_t`` itself is the total
     derivative through everything downstream of it (policy, cost, step): the same number as the derivative with
     respect to a zero probe added to ``x_t``, without the probe's extra operations.
     """
     with torch.enable_grad():
-        x = x0.detach().requires_grad_()
-        states, actions = [], []
-        total = x.new_zeros(x.shape[0])
-        for _ in range(horizon):
-            states.append(x)
-            u = policy(system.observe(x))
-            actions.append(u)
-            total = total + system.running_cost(x, u)
-            x = system.step(x, u)
-        states.append(x)
-        total = total + system.terminal_cost(x)
+        traj = rollout(system, policy, x0.detach().requires_grad_(), horizon, keep_steps=True)
+        states, actions = (list(v) for v in traj.visited)
+        total = traj.total_cost
         # The sum over trajectories: trajectory b's cost depends only on its own rows, so row b of each gradient
         # is that trajectory's dC/dx_t. autograd.grad leaves the policy parameters' .grad alone.
         grads = torch.autograd.grad(total.sum(), states + actions, allow_unused=True)
@@ -256,10 +250,8 @@ def _jacobian_log_sigma(system: System, policy: nn.Module, x0: Tensor, horizon: 
         return sys.step(x, functional_call(policy, params, (sys.observe(x),)))
 
     with torch.no_grad():
-        x, states = x0.detach().double(), []
-        for _ in range(horizon):
-            states.append(x)
-            x = closed_loop(system, x)
+        act = functools.partial(functional_call, policy, params)
+        states = list(rollout(system, lambda obs: act((obs,)), x0.detach().double(), horizon).states[:-1])
     rows = torch.arange(k, device=x0.device).repeat(horizon).repeat_interleave(n)  # trajectory of each row
     eye = torch.eye(n, dtype=torch.float64, device=x0.device)
     with torch.enable_grad():

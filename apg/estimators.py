@@ -45,7 +45,7 @@ from torch import Tensor, nn
 from torch.func import functional_call, vmap
 
 from apg.policies import Normaliser, mlp
-from apg.rollout import RolloutOptions, Trajectory, rollout, truncated_rollout
+from apg.rollout import ActionNoise, RolloutOptions, Trajectory, rollout
 from envs.base import System, check_record
 
 BASELINES = ("leave_one_out", "none")
@@ -158,7 +158,7 @@ def _bptt(loss: Tensor, policy: nn.Module) -> tuple[Tensor, ...]:
 
 class Analytic(GradientEstimator):
     """The exact gradient of the minibatch objective by backpropagation through time; with ``window`` > 0 the
-    truncated gradient (state detached every ``window`` steps, :func:`apg.rollout.truncated_rollout`)."""
+    truncated gradient (state detached every ``window`` steps: :func:`apg.rollout.rollout`'s ``window``)."""
 
     name = "analytic"
     title = "BPTT (exact gradient)"
@@ -172,11 +172,8 @@ class Analytic(GradientEstimator):
 
     def estimate(self, system: System, policy: nn.Module, x0: Tensor, horizon: int,
                  generator: torch.Generator) -> Estimate:
-        if self.settings.window and self.settings.window < horizon:
-            traj, _ = truncated_rollout(system, policy, x0, horizon, self.settings.window,
-                                        **self.rollout_options.as_kwargs())
-        else:
-            traj = rollout(system, policy, x0, horizon, **self.rollout_options.as_kwargs())
+        window = self.settings.window if self.settings.window < horizon else 0
+        traj = rollout(system, policy, x0, horizon, window=window, **self.rollout_options.as_kwargs())
         loss = traj.total_cost.mean()
         return Estimate(loss.detach(), _bptt(loss, policy), x0.shape[0] * horizon, traj.detach())
 
@@ -270,7 +267,8 @@ class TerminalValue(GradientEstimator):
     def estimate(self, system: System, policy: nn.Module, x0: Tensor, horizon: int,
                  generator: torch.Generator) -> Estimate:
         window = self.settings.window
-        traj, ends = truncated_rollout(system, policy, x0, horizon, window, **self.rollout_options.as_kwargs())
+        traj = rollout(system, policy, x0, horizon, window=window, **self.rollout_options.as_kwargs())
+        ends = traj.window_ends
         # Fit the value to this batch's cost-to-go from every state (time left as a fraction of the horizon).
         with torch.no_grad():
             to_go = torch.cat([traj.costs.flip(0).cumsum(0).flip(0) + traj.terminal, traj.terminal[None]])  # (T+1, B)
@@ -324,23 +322,10 @@ def _population(policy: nn.Module, flat: Tensor, batch: int) -> Callable[[Tensor
 
 
 def _noisy_rollout(system: System, act: Callable[[Tensor], Tensor], x0: Tensor, horizon: int,
-                   noise: Tensor | None = None) -> tuple[Trajectory, Tensor]:
-    """Roll out ``act`` from ``x0`` ``(K, n)``; with ``noise`` ``(T, K, action_dim)`` (already scaled) it is
-    added to every action and the sum clipped to the limits. Returns the trajectory (executed actions) and the
-    noise-free actions ``(T, K, action_dim)``."""
-    lo = torch.tensor(system.action_low, dtype=x0.dtype)
-    hi = torch.tensor(system.action_high, dtype=x0.dtype)
-    x, states, actions, means, costs = x0, [x0], [], [], []
-    for t in range(horizon):
-        mu = act(system.observe(x))
-        u = mu if noise is None else torch.clamp(mu + noise[t], lo, hi)
-        costs.append(system.running_cost(x, u))
-        x = system.step(x, u)
-        states.append(x)
-        actions.append(u)
-        means.append(mu)
-    traj = Trajectory(torch.stack(states), torch.stack(actions), torch.stack(costs), system.terminal_cost(x))
-    return traj, torch.stack(means)
+                   noise: Tensor | None = None) -> Trajectory:
+    """:func:`apg.rollout.rollout` of ``act`` from ``x0`` ``(K, n)``; with ``noise`` ``(T, K, action_dim)``
+    (already scaled) added to every action and the sum clipped to the limits."""
+    return rollout(system, act, x0, horizon, departure=None if noise is None else ActionNoise(noise, system))
 
 
 def _flat_parameters(policy: nn.Module) -> Tensor:
@@ -389,7 +374,7 @@ class EvolutionStrategies(GradientEstimator):
             eps = torch.randn(s.pairs, theta.numel(), generator=generator, dtype=theta.dtype)  # (n, P)
             thetas = torch.cat([theta + s.sigma * eps, theta - s.sigma * eps])  # (2n, P): all +, then all -
             k = thetas.shape[0]
-            traj, _ = _noisy_rollout(_tile_system(system, k), _population(policy, thetas, b), x0.repeat(k, 1),
+            traj = _noisy_rollout(_tile_system(system, k), _population(policy, thetas, b), x0.repeat(k, 1),
                                      horizon)
             cost = traj.total_cost.reshape(k, b).mean(1)  # (2n,) minibatch objective per parameter vector
             fitness = centred_ranks(cost) if s.rank_shaping else cost
@@ -407,7 +392,7 @@ class EvolutionStrategies(GradientEstimator):
         eps = torch.randn(samples, theta.numel(), generator=generator, dtype=theta.dtype)
         thetas = torch.cat([theta + self.settings.sigma * eps, theta - self.settings.sigma * eps])
         k = thetas.shape[0]
-        traj, _ = _noisy_rollout(_tile_system(system, k), _population(policy, thetas, b), x0.repeat(k, 1), horizon)
+        traj = _noisy_rollout(_tile_system(system, k), _population(policy, thetas, b), x0.repeat(k, 1), horizon)
         return _bptt(traj.total_cost.mean(), policy)
 
 
@@ -437,7 +422,7 @@ class _ActionNoise(GradientEstimator):
         sigma = self._scale(system, x0.dtype)
         xi = torch.randn(horizon, k, system.action_dim, generator=generator, dtype=x0.dtype)  # standard normal
         with torch.set_grad_enabled(alpha > 0):
-            traj, mu = _noisy_rollout(_tile_system(system, n), policy, x0.repeat(n, 1), horizon, xi * sigma)
+            traj = _noisy_rollout(_tile_system(system, n), policy, x0.repeat(n, 1), horizon, xi * sigma)
         loss = traj.total_cost.mean()
         total = alpha * loss if alpha > 0 else torch.zeros((), dtype=x0.dtype)
         if alpha < 1:

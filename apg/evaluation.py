@@ -21,7 +21,7 @@ import numpy as np
 import torch
 from torch import Tensor, nn
 
-from apg.rollout import Trajectory
+from apg.rollout import Departure, Trajectory, rollout
 from envs.base import System, check_record
 
 DTYPES = {"float32": torch.float32, "float64": torch.float64}
@@ -139,36 +139,41 @@ def disturbed_closed_loop(system: System, policy: Callable[[Tensor], Tensor], x0
     if isinstance(policy, nn.Module):
         policy.eval()
     plant = perturbed_system(system, disturbance)
-    d = disturbance
-    gen = torch.Generator().manual_seed(seed)
     ref = (reference_scale(system) if scale is None else scale).to(x0.dtype)
-    push_step = min(horizon - 1, int(round(d.push_time * horizon)))
-    x = x0
-    states, applied, commanded, costs = [x0], [], [], []
-    queue: list[Tensor] = []
-    for k in range(horizon):
-        seen = x
-        if d.obs_noise > 0:
-            seen = x + d.obs_noise * ref * torch.randn(x.shape, generator=gen, dtype=x.dtype)
-        u = policy(plant.observe(seen))
-        commanded.append(u)
-        if d.delay:
-            queue = queue or [u] * d.delay  # the actuator starts as if the controller had been running at x0
-            queue.append(u)
-            u = queue.pop(0)
-        if d.actuator_gain != 1.0:
-            u = d.actuator_gain * u
-        costs.append(plant.running_cost(x, u))
-        x = plant.step(x, u)
-        if d.push > 0 and k == push_step:
-            n_q = plant.n_q
-            sign = torch.randint(0, 2, (x.shape[0], n_q), generator=gen).to(x.dtype) * 2 - 1
-            kick = d.push * ref[n_q:] * sign  # (B, n_q): a velocity change, per generalised velocity
+    traj = rollout(plant, policy, x0, horizon, departure=_PlantDeparture(disturbance, plant, ref, horizon, seed))
+    return ClosedLoop(plant, traj, traj.commanded, plant.success(traj.states, traj.actions))
+
+
+class _PlantDeparture(Departure):
+    """The :class:`Disturbance` record as the closed loop's departures: sensor noise, delay, gain, a push."""
+
+    random = True
+
+    def __init__(self, d: Disturbance, plant: System, ref: Tensor, horizon: int, seed: int) -> None:
+        self.d, self.n_q, self.ref = d, plant.n_q, ref
+        self.gen = torch.Generator().manual_seed(seed)
+        self.push_step = min(horizon - 1, int(round(d.push_time * horizon)))
+        self.queue: list[Tensor] = []
+
+    def sense(self, x: Tensor, k: int) -> Tensor:
+        if self.d.obs_noise > 0:
+            return x + self.d.obs_noise * self.ref * torch.randn(x.shape, generator=self.gen, dtype=x.dtype)
+        return x
+
+    def actuate(self, u: Tensor, k: int) -> Tensor:
+        if self.d.delay:
+            self.queue = self.queue or [u] * self.d.delay  # the actuator starts as if the controller had been running
+            self.queue.append(u)
+            u = self.queue.pop(0)
+        return self.d.actuator_gain * u if self.d.actuator_gain != 1.0 else u
+
+    def perturb(self, x: Tensor, k: int) -> Tensor:
+        if self.d.push > 0 and k == self.push_step:
+            n_q = self.n_q
+            sign = torch.randint(0, 2, (x.shape[0], n_q), generator=self.gen).to(x.dtype) * 2 - 1
+            kick = self.d.push * self.ref[n_q:] * sign  # (B, n_q): a velocity change, per generalised velocity
             x = torch.cat([x[:, :n_q], x[:, n_q:] + kick], dim=-1)
-        states.append(x)
-        applied.append(u)
-    traj = Trajectory(torch.stack(states), torch.stack(applied), torch.stack(costs), plant.terminal_cost(x))
-    return ClosedLoop(plant, traj, torch.stack(commanded), plant.success(traj.states, traj.actions))
+        return x
 
 
 # ---- metrics ----------------------------------------------------------------------------------------------

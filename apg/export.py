@@ -40,7 +40,7 @@ import envs
 from apg.checkpoint import CHECKPOINT_NAME, atomic_write_bytes, atomic_write_text
 from apg.policies import Policy
 from apg.rollout import Evaluation, evaluate
-from apg.trainer import load_policy
+from apg.runs import LoadedRun, load_run
 from envs.base import System, bounded, check_record
 
 log = logging.getLogger(__name__)
@@ -120,16 +120,11 @@ def observation_layout(system: System) -> list[dict[str, Any]]:
     return out
 
 
-def describe(system: System, state: Mapping[str, Any], opset: int) -> dict[str, str]:
-    """The ``metadata_props`` of an exported policy (every value a string; JSON where structured).
-
-    Args:
-        system: the nominal system the policy was trained for (from the checkpoint's config).
-        state: the loaded checkpoint (for the config digest, iteration and training settings).
-    """
-    config = state.get("config", {}) or {}
-    train = config.get("train", {}) or {}
-    horizon = int(train.get("eval_horizon") or train.get("horizon") or 0)
+def describe(run: LoadedRun, opset: int) -> dict[str, str]:
+    """The ``metadata_props`` of an exported policy (every value a string; JSON where structured), all of it
+    from the run's record: the plant it names is the plant the run trained on."""
+    system, record = run.system, run.record
+    horizon = record.train.eval_steps
     meta = {
         "format": FORMAT,
         "system": system.name,
@@ -150,11 +145,11 @@ def describe(system: System, state: Mapping[str, Any], opset: int) -> dict[str, 
         "output": json.dumps({"name": OUTPUT_NAME, "dtype": "float32", "shape": ["batch", system.action_dim]}),
         "success_criterion": system.success_criterion,
         "horizon": str(horizon),
-        "config_digest": str(state.get("config_digest", "")),
-        "training": json.dumps({"iteration": state.get("iteration"), "seed": config.get("seed"),
-                                "experiment": config.get("experiment"),
-                                "ensemble": (config.get("system", {}) or {}).get("ensemble", {}),
-                                "policy": state.get("policy_settings")}, default=str),
+        "record_digest": record.digest(),
+        "training": json.dumps({"iteration": run.iteration, "seed": record.seed, "experiment": record.experiment,
+                                "ensemble": _plain(dict(record.system.ensemble)), "method": record.method,
+                                "policy": _record_dict(record.policy), "code_version": record.code_version},
+                               default=str),
         "opset": str(opset),
         "exported_with": json.dumps({"torch": torch.__version__, "onnx_opset": opset}),
         "hardware_caution": HARDWARE_CAUTION,
@@ -412,13 +407,11 @@ def export(source: Path | str, output: Path | str | None = None, settings: Expor
     out.parent.mkdir(parents=True, exist_ok=True)
 
     say(f"loading {source}")
-    policy, state = load_policy(source)
-    cfg = state.get("config", {}).get("system", {}) or {}
-    system = envs.build(state["system"], params=cfg.get("params"), task=cfg.get("task"), dt=cfg.get("dt"),
-                       integrator=cfg.get("integrator", "rk4"))
+    run = load_run(source)
+    policy, system = run.policy, run.system
     deployed = copy.deepcopy(policy).to(torch.float32).eval()
-    meta = describe(system, state, settings.opset)
-    ckpt_file = source if source.is_file() else source / CHECKPOINT_NAME
+    meta = describe(run, settings.opset)
+    ckpt_file = run.path
     meta[PREFIX + "checkpoint_sha256"] = hashlib.sha256(ckpt_file.read_bytes()).hexdigest()
 
     say(f"exporting to ONNX (opset {settings.opset})")
@@ -428,8 +421,8 @@ def export(source: Path | str, output: Path | str | None = None, settings: Expor
     horizon = int(meta[PREFIX + "horizon"])
     record = verify(system, policy, data, settings, horizon)
     record = {"file": out.name, "system": system.name, "opset": settings.opset, "onnx_sha256":
-              hashlib.sha256(data).hexdigest(), "checkpoint": str(ckpt_file), "config_digest":
-              meta[PREFIX + "config_digest"], **record}
+              hashlib.sha256(data).hexdigest(), "checkpoint": str(ckpt_file), "record_digest":
+              meta[PREFIX + "record_digest"], **record}
     report = report_path_for(out)
     atomic_write_text(report, json.dumps(record, indent=2) + "\n")
     if not record["passed"]:

@@ -10,7 +10,7 @@ from typing import Any
 from apg.diagnostics import GradientProfile
 from apg.reports.figures import profile_figure, trajectory_figure
 from apg.rollout import Evaluation
-from apg.trainer import Monitor, RunInfo
+from apg.train import Monitor, RunInfo
 
 # TensorBoard tags, in one place so docs and tests name the same strings.
 TAGS = {
@@ -87,7 +87,7 @@ class TensorBoardMonitor(Monitor):
         self.writer.add_figure(TAGS["gradient_profile"], profile_figure(profile), it, close=True)
 
     def end(self, metrics: dict[str, Any]) -> None:
-        hparams = _flatten({k: v for k, v in self.run.config.items() if k not in ("resume", "progress")})
+        hparams = _flatten(self.run.record.to_dict())
         finals = {f"final/{k}": float(metrics[k]) for k in ("eval_cost", "success_rate", "wall_time_s")}
         self.writer.add_hparams(hparams, finals, run_name="hparams")
 

@@ -19,13 +19,12 @@ from typing import Any, Callable, Sequence
 import torch
 from torch import Tensor, nn
 
-import envs
 from apg.checkpoint import CHECKPOINT_NAME, atomic_write_text
 from apg.evaluation import (DTYPES, Curve, SweepSettings, disturbed_closed_loop, evaluation_metrics, reference_scale,
                             sweep)
 from apg.export import OnnxPolicy, read_metadata, system_from_metadata
 from apg.reports.evaluation_report import REPORT_NAME, write_report
-from apg.trainer import load_policy
+from apg.runs import load_run
 from envs.base import System, check_record
 
 log = logging.getLogger(__name__)
@@ -97,18 +96,12 @@ def load_subject(path: Path | str, label: str | None = None) -> Subject:
         system = system_from_metadata(meta)
         return Subject(label or path.stem, path, "onnx", system, OnnxPolicy(path), int(meta.get("horizon", 0)),
                        dict(meta.get("training", {}).get("ensemble") or {}))
-    policy, state = load_policy(path)
-    cfg = state.get("config", {}) or {}
-    sysc = cfg.get("system", {}) or {}
-    system = envs.build(state["system"], params=sysc.get("params"), task=sysc.get("task"), dt=sysc.get("dt"),
-                       integrator=sysc.get("integrator", "rk4"))
-    train = cfg.get("train", {}) or {}
-    run_dir = path if path.is_dir() else path.parent
+    run = load_run(path)
+    record = run.record
     own_dir = path.is_dir() or path.name == CHECKPOINT_NAME
-    name = label or cfg.get("experiment") or (run_dir.name if own_dir else path.stem)
-    return Subject(str(name), path, "run", system, _InOwnDtype(policy), int(train.get("eval_horizon") or
-                                                                             train.get("horizon") or 0),
-                   dict(sysc.get("ensemble") or {}))
+    name = label or record.experiment or (run.run_dir.name if own_dir else path.stem)
+    return Subject(str(name), path, "run", run.system, _InOwnDtype(run.policy), record.train.eval_steps,
+                   {k: list(v) for k, v in record.system.ensemble.items()})
 
 
 def default_output(path: Path | str) -> Path:

@@ -51,7 +51,7 @@ def _child(spec: dict) -> dict:
     system = envs.build("cartpole")
     policy = make_policy(PolicySettings(hidden=(64, 64)), system)
     x0 = system.sample_initial(spec["batch"], torch.Generator().manual_seed(0))
-    options = dict(checkpoint_every=spec["window"], compile=spec["compile"])
+    options = dict(recompute_every=spec["window"], compile=spec["compile"])
 
     def bptt(horizon: int) -> None:
         policy.zero_grad(set_to_none=True)

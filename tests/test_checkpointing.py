@@ -16,7 +16,7 @@ import torch
 import envs
 from apg import Analytic, OptimSettings, PolicySettings, TrainSettings, make_policy, rollout, train
 from apg.ensemble import ParameterRanges
-from apg.rollout import RolloutOptions, _closed_loop_step
+from apg.rollout import RolloutOptions, _step
 
 ROLLOUT_MODULE = sys.modules["apg.rollout"]  # the name apg.rollout is the function, re-exported by apg
 
@@ -48,7 +48,7 @@ def _loss_and_grads(system, policy, x0, horizon, **options):
 def test_checkpointed_rollout_has_the_plain_gradient(name, ensemble, window):
     system, policy, x0 = _setup(name, ensemble=ensemble)
     plain, g_plain = _loss_and_grads(system, policy, x0, 40)
-    windowed, g_win = _loss_and_grads(system, policy, x0, 40, checkpoint_every=window)
+    windowed, g_win = _loss_and_grads(system, policy, x0, 40, recompute_every=window)
     for field in ("states", "actions", "costs", "terminal"):
         torch.testing.assert_close(getattr(windowed, field), getattr(plain, field), **EXACT)
     for a, b in zip(g_win, g_plain):
@@ -72,7 +72,7 @@ def _saved_bytes(fn) -> int:
 def test_checkpointing_keeps_a_fraction_of_the_activations():
     system, policy, x0 = _setup("cartpole", batch=64)
     plain = _saved_bytes(lambda: rollout(system, policy, x0, 200).total_cost.mean())
-    windowed = _saved_bytes(lambda: rollout(system, policy, x0, 200, checkpoint_every=14).total_cost.mean())
+    windowed = _saved_bytes(lambda: rollout(system, policy, x0, 200, recompute_every=14).total_cost.mean())
     # Without checkpointing every step keeps the MLP's and RK4's intermediates (hundreds of numbers per state);
     # with it only window boundaries and the trajectory itself remain: well under a tenth.
     assert windowed < plain / 10, (windowed, plain)
@@ -82,17 +82,16 @@ def test_no_grad_rollout_ignores_the_window():
     system, policy, x0 = _setup("cartpole")
     with torch.no_grad():
         a = rollout(system, policy, x0, 30)
-        b = rollout(system, policy, x0, 30, checkpoint_every=4)
+        b = rollout(system, policy, x0, 30, recompute_every=4)
     torch.testing.assert_close(a.states, b.states, rtol=0, atol=0)
 
 
 def _train(tmp_path, resume=False, **settings):
     s = TrainSettings(**{**dict(iterations=4, batch_size=8, horizon=30, eval_every=4, eval_batch=16, figure_every=0,
                                 checkpoint_every=2, dtype="float64"), **settings})
-    config = {"seed": 1, "train": {"iterations": s.iterations, "recompute_every": s.recompute_every}}
     optim = OptimSettings(lr=1e-2, schedule="constant")  # constant: stopping at 2 of 4 and resuming is exact
     return train(envs.build("pendulum"), PolicySettings(hidden=(16,)), optim, Analytic(), s, seed=1,
-                 run_dir=tmp_path, resume=resume, config=config)
+                 run_dir=tmp_path, resume=resume)
 
 
 def test_training_with_a_recompute_every_matches_plain_training(tmp_path):
@@ -123,11 +122,11 @@ def test_compiled_step_matches_eager(monkeypatch, tmp_path):
     torch._dynamo.reset()
     counters.clear()
     monkeypatch.setattr(ROLLOUT_MODULE, "_compiled_step",
-                        functools.cache(lambda: torch.compile(_closed_loop_step, backend="aot_eager")))
+                        functools.cache(lambda: torch.compile(_step, backend="aot_eager")))
     try:
         system, policy, x0 = _setup("cartpole")
         plain, g_plain = _loss_and_grads(system, policy, x0, 20)
-        compiled, g_comp = _loss_and_grads(system, policy, x0, 20, compile=True, checkpoint_every=6)
+        compiled, g_comp = _loss_and_grads(system, policy, x0, 20, compile=True, recompute_every=6)
         assert counters["stats"]["unique_graphs"] >= 1  # the step really went through torch.compile
         # Traced graphs may reorder float64 operations: rounding-level differences only.
         torch.testing.assert_close(compiled.total_cost, plain.total_cost, rtol=1e-10, atol=1e-12)
@@ -146,8 +145,8 @@ def test_compiled_step_matches_eager(monkeypatch, tmp_path):
 def test_bad_window_is_named():
     with pytest.raises(ValueError, match="recompute_every"):
         TrainSettings(recompute_every=-1)
-    with pytest.raises(ValueError, match="checkpoint_every"):
-        RolloutOptions(checkpoint_every=-2)
+    with pytest.raises(ValueError, match="recompute_every"):
+        RolloutOptions(recompute_every=-2)
     system, policy, x0 = _setup("cartpole")
-    with pytest.raises(ValueError, match="checkpoint_every"):
-        rollout(system, policy, x0, 5, checkpoint_every=-1)
+    with pytest.raises(ValueError, match="recompute_every"):
+        rollout(system, policy, x0, 5, recompute_every=-1)

@@ -1,6 +1,6 @@
 """apg-train from its config: Hydra composition, errors that name the bad key, run directories, TensorBoard.
 
-Most tests call the entry's ``run()`` (or ``apg.config.build``) on a config composed with ``hydra.compose``, in
+Most tests call the entry's ``run()`` (or ``apg.cli.config.build_train``) on a config composed with ``hydra.compose``, in
 this process; a subprocess adds only the interpreter's start and Hydra's logging set-up, which the one
 subprocess test per entry point here checks (exit code, the error on stderr). apg-export, apg-eval and
 apg-compare have theirs next to their library tests (tests/test_export.py, test_eval.py, test_compare.py).
@@ -23,11 +23,11 @@ from hydra.core.hydra_config import HydraConfig
 from omegaconf import OmegaConf, open_dict
 
 import envs
-from apg import config as app_config
+from apg.cli import config as app_config
 from apg.cli import train as train_cli
 from apg.cli.train import CONFIG_DIR
 from apg.monitor import TAGS
-from apg.trainer import RunExistsError
+from apg.runs import RunExistsError
 
 TINY = ["train.iterations=2", "train.batch_size=8", "train.horizon=10", "train.eval_every=1", "train.eval_batch=16",
         "train.figure_every=2", "progress=false"]
@@ -154,12 +154,13 @@ def _leaves(node: dict, prefix: tuple[str, ...] = ()) -> Iterator[tuple[tuple[st
             yield prefix + (key,), value
 
 
-def _built(spec: app_config.RunSpec, path: tuple[str, ...]) -> Any:
+def _built(spec: app_config.TrainSpec, path: tuple[str, ...]) -> Any:
     """The value at a config path, read back from the built records (not from the config)."""
     head, *rest = path
+    record = spec.record
     if head == "system" and rest[0] == "ensemble":
-        return {name: [low, high] for name, low, high in spec.ensemble.ranges}[rest[1]]
-    obj: Any = spec.system if head == "system" else getattr(spec, head)
+        return list(record.system.ensemble[rest[1]])
+    obj: Any = {"system": spec.system, "estimator": record.update}.get(head) or getattr(record, head)
     for key in rest:
         obj = getattr(obj, key)
     return list(obj) if isinstance(obj, tuple) else obj
@@ -168,8 +169,8 @@ def _built(spec: app_config.RunSpec, path: tuple[str, ...]) -> Any:
 @pytest.mark.parametrize("experiment", EXPERIMENTS)
 def test_experiment_values_arrive_in_the_records(experiment):
     raw = OmegaConf.to_container(OmegaConf.load(Path(CONFIG_DIR) / "experiment" / f"{experiment}.yaml"))
-    spec = app_config.build(composed(f"+experiment={experiment}"))
-    assert spec.config["experiment"] == experiment == raw["experiment"]
+    spec = app_config.build_train(composed(f"+experiment={experiment}"))
+    assert spec.record.experiment == experiment == raw["experiment"]
     option = next((d["override /system"] for d in raw.get("defaults", []) if isinstance(d, dict)
                    and "override /system" in d), "pendulum")
     assert spec.system.name == OmegaConf.load(Path(CONFIG_DIR) / "system" / f"{option}.yaml").name
@@ -182,7 +183,7 @@ def test_experiment_values_arrive_in_the_records(experiment):
 @pytest.mark.parametrize("option", SYSTEM_OPTIONS)
 def test_system_option_values_arrive_in_the_system(option):
     raw = OmegaConf.to_container(OmegaConf.load(Path(CONFIG_DIR) / "system" / f"{option}.yaml"))
-    spec = app_config.build(composed(f"system={option}"))
+    spec = app_config.build_train(composed(f"system={option}"))
     assert type(spec.system) is envs.SYSTEMS[raw["name"]]
     assert spec.system.dt == raw.get("dt", envs.SYSTEMS[raw["name"]].default_dt)
     for path, value in _leaves({k: raw[k] for k in ("params", "task") if k in raw}):

@@ -16,7 +16,7 @@ from hydra import compose, initialize_config_dir
 
 import envs
 from apg import OptimSettings, Policy, PolicySettings, TrainSettings
-from apg.cli import compare_config
+from apg.cli import config as compare_config
 from apg.cli.compare import CONFIG_DIR
 from apg.compare import (Entrant, RaceResult, RaceSettings, StudySettings, choose_target, evaluation_schedule,
                          gradient_study, race_summary)
@@ -68,8 +68,8 @@ def test_study_on_the_quadratic_matches_closed_forms():
 
 # ---- race bookkeeping on hand-made curves ------------------------------------------------------------------------------
 def _entrant(label, name):
-    return Entrant(label=label, method="gradient", optim=OptimSettings(), train=TrainSettings(batch_size=4, horizon=5),
-                   estimator=EstimatorSettings(name=name, pairs=2))
+    return Entrant(label=label, update=EstimatorSettings(name=name, pairs=2), optim=OptimSettings(),
+                   train=TrainSettings(batch_size=4, horizon=5))
 
 
 def _result(curves, target_cost=None):
@@ -149,7 +149,7 @@ def _compose(*overrides):
 
 
 def test_default_config_builds_every_entrant():
-    spec = compare_config.build(_compose())
+    spec = compare_config.build_compare(_compose())
     methods = {e.label: (e.method, e.estimator.name if e.estimator else None) for e in spec.entrants}
     assert methods == {"analytic": ("gradient", "analytic"), "es": ("gradient", "es"),
                        "likelihood_ratio": ("gradient", "likelihood_ratio"), "alpha_order": ("gradient", "alpha_order"),
@@ -163,7 +163,7 @@ def test_default_config_builds_every_entrant():
 @pytest.mark.parametrize("name", sorted(p.stem for p in (Path(CONFIG_DIR) / "compare").glob("*.yaml")))
 def test_every_shipped_race_builds(name):
     """Each race preset in configs/compare composes into valid records and every entrant it races exists."""
-    spec = compare_config.build(_compose(f"+compare={name}"))
+    spec = compare_config.build_compare(_compose(f"+compare={name}"))
     labels = {e.label for e in spec.entrants}
     assert set(spec.race.only) <= labels and spec.race.reference in labels
     for e in spec.entrants:
@@ -171,7 +171,7 @@ def test_every_shipped_race_builds(name):
 
 
 def test_long_horizon_presets_switch_their_mitigations_on():
-    spec = compare_config.build(_compose("+compare=long_pogo"))
+    spec = compare_config.build_compare(_compose("+compare=long_pogo"))
     by = {e.label: e for e in spec.entrants}
     assert by["truncated"].estimator.window == 100 and by["truncated"].estimator.name == "analytic"
     assert by["terminal_value"].estimator.name == "terminal_value"
@@ -191,7 +191,7 @@ def test_long_horizon_presets_switch_their_mitigations_on():
 ])
 def test_bad_compare_config_names_the_key(override, named):
     with pytest.raises(ValueError, match=named):
-        compare_config.build(_compose(override))
+        compare_config.build_compare(_compose(override))
 
 
 TINY = ["progress=false", "train.horizon=8", "train.eval_batch=16", "study.batch=8", "study.groups=2",

@@ -31,7 +31,8 @@ from apg.monitor import TAGS, ProgressMonitor, TensorBoardMonitor
 from apg.policies import PolicySettings, make_policy
 from apg.reports.figures import plt, profile_figure  # the Agg backend
 from apg.rollout import rollout
-from apg.trainer import RunInfo, TrainSettings
+from apg.runs import TrainSettings
+from apg.train import RunInfo
 
 F64 = torch.float64
 X0 = torch.tensor([[1.0, 0.5], [-1.5, 0.2], [0.3, -0.8]], dtype=F64)  # position (m), velocity (m/s)
@@ -260,7 +261,7 @@ def test_tensorboard_monitor_writes_heatmap_and_scalars(tmp_path, profiles, di):
     assert any("log10" in ax.get_ylabel() for ax in fig.axes)  # the colourbar's label
     plt.close(fig)
     monitor = TensorBoardMonitor()
-    monitor.start(RunInfo(di, None, TrainSettings(), tmp_path, 0, {}))
+    monitor.start(RunInfo(di, None, TrainSettings(), tmp_path, 0, None))
     monitor.diagnostics(5, exploding)
     monitor.close()
     events = EventAccumulator(str(tmp_path))
@@ -276,7 +277,7 @@ def test_tensorboard_monitor_writes_heatmap_and_scalars(tmp_path, profiles, di):
 def test_progress_monitor_warns_once_then_only_when_worse(caplog, tmp_path, profiles, di, enabled):
     exploding, stable = profiles
     monitor = ProgressMonitor(enabled=enabled)  # the warning must not depend on the bar being shown
-    monitor.start(RunInfo(di, None, TrainSettings(iterations=10), tmp_path, 0, {}))
+    monitor.start(RunInfo(di, None, TrainSettings(iterations=10), tmp_path, 0, None))
     with caplog.at_level(logging.WARNING, logger="apg.train"):
         for it in range(3):
             monitor.diagnostics(it, exploding)
@@ -288,7 +289,7 @@ def test_progress_monitor_warns_once_then_only_when_worse(caplog, tmp_path, prof
         monitor.diagnostics(4, worse)
         assert len(caplog.records) == 2
         monitor.close()
-        monitor.start(RunInfo(di, None, TrainSettings(iterations=10), tmp_path, 0, {}))  # a new run warns afresh
+        monitor.start(RunInfo(di, None, TrainSettings(iterations=10), tmp_path, 0, None))  # a new run warns afresh
         monitor.diagnostics(0, exploding)
         assert len(caplog.records) == 3
     monitor.close()

@@ -21,14 +21,14 @@ from hydra import compose, initialize_config_dir
 
 import envs
 from apg import Analytic, OptimSettings, PolicySettings, TrainSettings, make_policy, train
-from apg import config as app_config
+from apg.cli import config
 from apg import distributed
 from apg.checkpoint import load_checkpoint
 from apg.cli.train import CONFIG_DIR
 from apg.distributed import Shard
 from apg.ensemble import ParameterRanges
 from apg.estimators import make_estimator
-from apg.trainer import Monitor
+from apg.train import Monitor, train_record
 
 BATCH, HORIZON = 15, 12  # 15 = 8 + 7: an uneven split, so the weighting by share size matters
 POLICY = PolicySettings(hidden=(16,), normalise="running")  # running statistics: rollouts must be gathered
@@ -58,7 +58,7 @@ def _settings(iterations):
 
 def _train(run_dir, iterations, resume=False, shard=None, monitors=()):
     return train(envs.build("pendulum"), POLICY, OPTIM, Analytic(), _settings(iterations), seed=5, run_dir=run_dir,
-                 resume=resume, config={"seed": 5, "train": {"iterations": iterations}}, monitors=monitors,
+                 resume=resume, monitors=monitors,
                  ensemble=ENSEMBLE, shard=shard)
 
 
@@ -176,9 +176,8 @@ def test_torchrun_training_matches_a_single_process_run(tmp_path):
                         capture_output=True, text=True, timeout=300)
     assert dp.returncode == 0, dp.stderr[-3000:]
     with initialize_config_dir(config_dir=CONFIG_DIR, version_base="1.3"):  # the same config, in this process
-        spec = app_config.build(compose(config_name="train", overrides=tiny))
-    train(spec.system, spec.policy, spec.optim, make_estimator(spec.estimator), spec.train, seed=spec.seed,
-          run_dir=tmp_path / "one", config=spec.config)
+        record = config.build_train(compose(config_name="train", overrides=tiny)).record
+    train_record(record, tmp_path / "one")
     m_dp, m_one = (json.loads((tmp_path / d / "metrics.json").read_text()) for d in ("dp", "one"))
     assert m_dp["processes"] == 2 and m_dp["env_steps"] == m_one["env_steps"] == 3 * 9 * 10
     # float64; summation order only (see above).

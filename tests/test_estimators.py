@@ -25,8 +25,8 @@ import torch
 from hydra import compose, initialize_config_dir
 
 import envs
-from apg import Analytic, Policy, PolicySettings, make_policy, rollout, train
-from apg import config as app_config
+from apg import Analytic, Policy, PolicySettings, make_policy, rollout, train, train_record
+from apg.cli import config
 from apg.cli.train import CONFIG_DIR
 from apg.estimators import (ESTIMATORS, AlphaOrder, EstimatorSettings, EvolutionStrategies, LikelihoodRatio,
                             centred_ranks, make_estimator)
@@ -298,9 +298,8 @@ def test_every_estimator_config_trains_through_apg_train(tmp_path, name):
     with initialize_config_dir(config_dir=CONFIG_DIR, version_base="1.3"):
         cfg = compose(config_name="train", overrides=[f"estimator={name}", "train.iterations=2", "train.batch_size=4",
                                                       "train.horizon=5", "train.eval_batch=8", "train.figure_every=0"])
-    spec = app_config.build(cfg)
-    estimator = make_estimator(spec.estimator)
-    result = train(spec.system, spec.policy, spec.optim, estimator, spec.train, seed=0, run_dir=tmp_path,
-                   config=spec.config)
+    record = config.build_train(cfg).record
+    estimator = make_estimator(record.update)
+    result = train_record(record, tmp_path)
     assert result.metrics["iterations"] == 2
     assert result.metrics["env_steps"] == 2 * estimator.steps_per_estimate(4, 5)

@@ -17,6 +17,7 @@ import torch
 from PIL import Image
 
 import envs
+from apg.ensemble import ParameterRanges
 from apg import Analytic, OptimSettings, PolicySettings, TrainSettings, evaluate, make_policy, train
 from apg.evaluation import (ClosedLoop, Disturbance, SweepSettings, _wilson, disturbed_closed_loop, evaluation_metrics,
                             param_grid, saturation, sweep, sweep_plan, time_to_success, violations)
@@ -24,7 +25,7 @@ from apg.export import ExportSettings, export
 from apg.report import EvalSettings, run_report
 from apg.reports.animation import animate
 from apg.cli.eval import CONFIG_DIR
-from apg.cli.schemas import build_eval
+from apg.cli.config import build_eval
 from hydra import compose, initialize_config_dir
 from apg.rollout import Trajectory
 
@@ -165,11 +166,9 @@ def test_unknown_parameter_in_the_sweep_is_named():
 def quad_run(tmp_path_factory):
     run = tmp_path_factory.mktemp("quad")
     system = envs.build("quadrotor")
-    config = {"system": {"name": "quadrotor", "ensemble": {"mass": [0.7, 0.9]}}, "train": {"horizon": 30},
-              "experiment": "tiny_quad"}
     train(system, PolicySettings(hidden=(16,)), OptimSettings(), Analytic(),
           TrainSettings(iterations=3, batch_size=16, horizon=30, eval_batch=16, figure_every=0), seed=0,
-          run_dir=run, config=config)
+          run_dir=run, ensemble=ParameterRanges.from_mapping({"mass": [0.7, 0.9]}), experiment="tiny_quad")
     return run
 
 

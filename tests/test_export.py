@@ -3,6 +3,8 @@ and an independent scipy integration of the published cart-pole equations driven
 
 from __future__ import annotations
 
+import dataclasses
+
 import json
 import os
 import subprocess
@@ -17,7 +19,8 @@ import torch
 from scipy.integrate import solve_ivp
 
 import envs
-from apg import Analytic, OptimSettings, PolicySettings, TrainSettings, load_policy, rollout, train
+from apg import Analytic, OptimSettings, PolicySettings, TrainSettings, load_run, rollout, train
+from apg.runs import SystemSpec
 from apg.checkpoint import CheckpointError
 from apg.export import (DEFAULT_OPSET, HARDWARE_CAUTION, INPUT_NAME, OUTPUT_NAME, ExportSettings, PolicyFileError,
                         VerificationError, export, read_metadata, system_from_metadata)
@@ -32,10 +35,7 @@ SYSTEMS = {"cartpole": {}, "quadrotor": {}, "crane": {}}
 def _train(system_name: str, run_dir: Path, settings: TrainSettings = TINY_TRAIN,
            policy: PolicySettings = PolicySettings(hidden=(16, 16)), lr: float = 3e-3, **system_kw) -> Path:
     system = envs.build(system_name, **system_kw)
-    config = {"system": {"name": system_name, "dt": system.dt, "params": system_kw.get("params", {}),
-                         "task": system_kw.get("task", {})},
-              "train": {"horizon": settings.horizon, "eval_horizon": settings.eval_horizon}, "seed": 0}
-    train(system, policy, OptimSettings(lr=lr), Analytic(), settings, seed=0, run_dir=run_dir, config=config)
+    train(system, policy, OptimSettings(lr=lr), Analytic(), settings, seed=0, run_dir=run_dir)
     return run_dir
 
 
@@ -64,7 +64,7 @@ def test_onnx_file_matches_the_torch_policy_open_and_closed_loop(runs, tmp_path,
     dim = model.graph.input[0].type.tensor_type.shape.dim[0]
     assert dim.dim_param and not dim.dim_value  # a symbolic batch dimension
 
-    policy, _ = load_policy(runs[name])
+    policy = load_run(runs[name]).policy
     system = envs.build(name)
     sess = _session(tmp_path / "p.onnx")
     # Observations from the initial box widened fourfold: the normaliser and tanh must hold off-distribution too.
@@ -103,13 +103,56 @@ def test_metadata_round_trips(runs, tmp_path):
     assert [o["name"] for o in meta["observation"]] == list(original.obs_names)
     assert [(a["low"], a["high"]) for a in meta["action"]] == list(zip(original.action_low, original.action_high))
     assert [a["unit"] for a in meta["action"]] == ["N", "N"]
-    _, state = load_policy(runs["quadrotor"])
-    assert meta["config_digest"] == state["config_digest"]
+    run = load_run(runs["quadrotor"])
+    assert meta["record_digest"] == run.record.digest()
+    assert meta["training"]["seed"] == run.record.seed and meta["training"]["method"] == "gradient"
     assert meta["opset"] == DEFAULT_OPSET and meta["horizon"] == TINY_TRAIN.horizon
     assert meta["hardware_caution"] == HARDWARE_CAUTION
     for phrase in ("simulation", "validate it on that machine", "torque, force and speed limits", "emergency stop",
                    "machine-safety standards", "local codes", "licensed"):
         assert phrase in meta["hardware_caution"]
+
+
+def _plant_as_reloaded(run_dir: Path, tmp_path: Path) -> tuple[dict, dict]:
+    """The plant parameters an exported file states, and those apg-eval simulates, for a run directory."""
+    from apg.report import load_subject
+
+    meta = read_metadata(export(run_dir, tmp_path / "policy.onnx", FAST).onnx_path)
+    evaluated = load_subject(run_dir).system
+    from_file = load_subject(tmp_path / "policy.onnx").system
+    assert dataclasses.asdict(from_file.params) == meta["params"]  # apg-eval on the file uses its metadata
+    return meta["params"], dataclasses.asdict(evaluated.params)
+
+
+def test_a_library_run_exports_and_evaluates_on_its_own_plant(tmp_path):
+    """The defect this guards: a run made through train() with a non-default plant (a 12 t container, a 20 kN
+    drive) was exported and evaluated on the 10 t default, because loaders rebuilt the system from a config dict
+    the library run did not have. The run record now carries the plant's own values."""
+    crane = envs.build("crane", params={"load_mass": 12_000.0, "force_limit": 20_000.0}, dt=0.05)
+    train(crane, PolicySettings(hidden=(8,)), OptimSettings(), Analytic(), TINY_TRAIN, seed=0,
+          run_dir=tmp_path / "run")
+    stated, evaluated = _plant_as_reloaded(tmp_path / "run", tmp_path)
+    assert stated["load_mass"] == evaluated["load_mass"] == 12_000.0
+    assert stated["force_limit"] == evaluated["force_limit"] == 20_000.0
+    assert load_run(tmp_path / "run").system.dt == 0.05
+    assert read_metadata(tmp_path / "policy.onnx")["action"][0]["high"] == 20_000.0
+
+
+def test_a_cli_run_exports_and_evaluates_on_its_own_plant(tmp_path):
+    """The same through apg-train's config path: a 0.7 kg bob and a 5 N m motor, overridden on the command line."""
+    from hydra import compose, initialize_config_dir
+
+    from apg.cli import config
+    from apg.train import train_record
+
+    with initialize_config_dir(config_dir=str(Path(__file__).resolve().parents[1] / "configs"), version_base="1.3"):
+        cfg = compose(config_name="train", overrides=["system.params.mass=0.7", "system.params.torque_limit=5.0",
+                                                      "train.iterations=2", "train.batch_size=8", "train.horizon=10",
+                                                      "train.eval_batch=8", "train.figure_every=0"])
+    train_record(config.build_train(cfg).record, tmp_path / "run")
+    stated, evaluated = _plant_as_reloaded(tmp_path / "run", tmp_path)
+    assert stated["mass"] == evaluated["mass"] == 0.7
+    assert stated["torque_limit"] == evaluated["torque_limit"] == 5.0
 
 
 def test_failed_verification_is_an_error_and_writes_no_file(runs, tmp_path, monkeypatch):
@@ -141,13 +184,39 @@ def test_corrupt_and_mismatched_checkpoints_give_clear_errors(runs, tmp_path):
     with pytest.raises(CheckpointError, match="no checkpoint at"):
         export(tmp_path / "nowhere", settings=FAST)
 
-    state = torch.load(runs["cartpole"] / "checkpoint.pt", weights_only=False)
-    state["system"] = "pendulum"  # a cart-pole policy (5 inputs) claimed for the pendulum (3 inputs)
-    state["config"]["system"] = {"name": "pendulum"}
+    state = torch.load(runs["cartpole"] / "checkpoint.pt", weights_only=True)
+    # a cart-pole policy (5 inputs) claimed for the pendulum (3 inputs)
+    state["record"]["system"] = SystemSpec.of(envs.build("pendulum")).to_dict()
     (tmp_path / "mixed").mkdir()
     torch.save(state, tmp_path / "mixed" / "checkpoint.pt")
-    with pytest.raises(ValueError, match="does not match system 'pendulum'"):
+    with pytest.raises(ValueError, match="does not fit the recorded system 'pendulum'"):
         export(tmp_path / "mixed", settings=FAST)
+
+
+class _Payload:
+    """Unpickling this would call os.system: what a hostile 'checkpoint' would carry."""
+
+    def __init__(self, marker: Path) -> None:
+        self.marker = marker
+
+    def __reduce__(self):
+        import os
+
+        return (os.system, (f"touch {self.marker}",))
+
+
+def test_a_checkpoint_carrying_code_is_refused_without_running_it(tmp_path):
+    """Checkpoints are data: torch.load(weights_only=True) refuses any pickled object other than tensors and plain
+    containers (torch.load's documented safe mode), so the payload's command never runs."""
+    marker = tmp_path / "payload-ran"
+    (tmp_path / "evil").mkdir()
+    torch.save({"format": "apg-checkpoint", "version": 2, "record": _Payload(marker)},
+               tmp_path / "evil" / "checkpoint.pt")
+    with pytest.raises(CheckpointError, match=r"evil/checkpoint.pt.*never run"):
+        export(tmp_path / "evil", settings=FAST)
+    with pytest.raises(CheckpointError, match="never run"):
+        load_run(tmp_path / "evil")
+    assert not marker.exists()
 
 
 def test_foreign_or_corrupt_onnx_is_refused(tmp_path):

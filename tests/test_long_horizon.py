@@ -22,7 +22,7 @@ from torch import nn
 import envs
 from apg import OptimSettings, PolicySettings, TrainSettings, make_policy, train
 from apg.estimators import Analytic, Estimate, EstimatorSettings, TerminalValue, make_estimator
-from apg.rollout import rollout, truncated_rollout
+from apg.rollout import rollout
 
 F64 = torch.float64
 
@@ -43,10 +43,11 @@ def _linear_setup(batch: int = 5):
 
 
 # ---- truncated BPTT ----------------------------------------------------------------------------------------------
-def test_truncated_rollout_states_and_costs_equal_the_plain_rollout():
+def test_truncated_states_and_costs_equal_the_plain_rollout():
     system, policy, x0 = _linear_setup()
     plain = rollout(system, policy, x0, 23)
-    cut, ends = truncated_rollout(system, policy, x0, 23, 5)
+    cut = rollout(system, policy, x0, 23, window=5)
+    ends = cut.window_ends
     torch.testing.assert_close(cut.states, plain.states, rtol=1e-14, atol=1e-14)
     torch.testing.assert_close(cut.total_cost, plain.total_cost, rtol=1e-14, atol=1e-14)
     assert len(ends) == 4  # windows of 5, 5, 5, 5, 3 steps: four interior boundaries
@@ -179,11 +180,10 @@ def test_terminal_value_needs_a_window():
 def _train(tmp_path, estimator=None, resume=False, **settings):
     s = TrainSettings(**{**dict(iterations=6, batch_size=8, horizon=20, eval_every=6, eval_batch=16, figure_every=0,
                                 checkpoint_every=3, dtype="float64", diagnose_every=0), **settings})
-    config = {"seed": 1, "train": dataclasses.asdict(s)}
     optim = OptimSettings(lr=1e-2, schedule="constant")
     return train(envs.build("pendulum"), PolicySettings(hidden=(16,)), optim,
                  estimator or make_estimator(EstimatorSettings(name="terminal_value", window=5)), s, seed=1,
-                 run_dir=tmp_path, resume=resume, config=config)
+                 run_dir=tmp_path, resume=resume)
 
 
 @pytest.mark.filterwarnings("ignore:train.iterations differs")

@@ -7,8 +7,8 @@ import torch
 
 import envs
 from apg import Analytic, OptimSettings, PolicySettings, TrainSettings, train
-from apg.ppo import PPOSettings, advantages, train_ppo
-from apg.trainer import Monitor, RunExistsError
+from apg.train import Monitor, RunExistsError
+from apg.updates import PPOSettings, advantages
 
 SMALL = PolicySettings(hidden=(32, 32))
 
@@ -52,11 +52,11 @@ def test_ppo_learns_to_balance_the_cartpole(tmp_path, seed):
     """A real learning check, loose on purpose: 20 iterations of 32 rollouts x 60 steps (38,400 simulator steps)
     must cut the held-out cost to a quarter of the initial policy's. Measured: to 2-7 % of it (~1.6 s a seed)."""
     evals = _Evals()
-    result = train_ppo(envs.build("cartpole"), SMALL, OptimSettings(lr=3e-3, schedule="constant"),
-                       PPOSettings(epochs=5, minibatches=4),
-                       TrainSettings(iterations=20, batch_size=32, horizon=60, eval_every=20, eval_batch=128,
-                                     grad_clip=0.5, figure_every=0),
-                       seed=seed, run_dir=tmp_path, monitors=[evals])
+    result = train(envs.build("cartpole"), SMALL, OptimSettings(lr=3e-3, schedule="constant"),
+                   PPOSettings(epochs=5, minibatches=4),
+                   TrainSettings(iterations=20, batch_size=32, horizon=60, eval_every=20, eval_batch=128,
+                                 grad_clip=0.5, figure_every=0),
+                   seed=seed, run_dir=tmp_path, monitors=[evals])
     assert result.metrics["env_steps"] == 20 * 32 * 60 == evals.steps[-1]
     assert evals.costs[-1] < 0.25 * evals.costs[0], evals.costs
 
@@ -67,15 +67,43 @@ def test_ppo_starts_from_the_trainers_initial_policy_and_respects_the_step_budge
     settings = TrainSettings(iterations=50, batch_size=8, horizon=10, eval_every=50, eval_batch=16, figure_every=0,
                              max_env_steps=200)
     ppo, bptt = _Evals(), _Evals()
-    result = train_ppo(system, SMALL, OptimSettings(lr=1e-3), PPOSettings(epochs=1, minibatches=2), settings,
-                       seed=4, run_dir=tmp_path / "ppo", monitors=[ppo])
+    result = train(system, SMALL, OptimSettings(lr=1e-3), PPOSettings(epochs=1, minibatches=2), settings,
+                   seed=4, run_dir=tmp_path / "ppo", monitors=[ppo])
     train(system, SMALL, OptimSettings(lr=1e-3), Analytic(), settings, seed=4, run_dir=tmp_path / "bptt",
           monitors=[bptt])
     assert ppo.costs[0] == bptt.costs[0]
     # 80 steps an iteration: a 200-step budget ends after the 3rd iteration (240 >= 200), as in the trainer.
     assert result.metrics["iterations"] == 3 and result.metrics["env_steps"] == 240
-    with pytest.raises(RunExistsError, match="do not resume"):
-        train_ppo(system, SMALL, OptimSettings(lr=1e-3), PPOSettings(), settings, seed=4, run_dir=tmp_path / "ppo")
+    with pytest.raises(RunExistsError, match="resume=true"):
+        train(system, SMALL, OptimSettings(lr=1e-3), PPOSettings(), settings, seed=4, run_dir=tmp_path / "ppo")
+
+
+class _Stop(Monitor):
+    def __init__(self, at):
+        self.at = at
+
+    def iteration(self, it, stats):
+        if it == self.at:
+            raise RuntimeError("simulated crash")
+
+
+def test_ppo_resumes_exactly(tmp_path):
+    """PPO runs in the same loop as every method, so its critic, action noise, optimiser and random streams are
+    checkpointed: a run crashed after iteration 5 and resumed ends bit-identical to one never stopped."""
+    system = envs.build("cartpole")
+    settings = TrainSettings(iterations=8, batch_size=8, horizon=20, eval_every=4, eval_batch=16, figure_every=0,
+                             checkpoint_every=4)
+    optim = OptimSettings(lr=1e-3, schedule="constant")
+    straight = train(system, SMALL, optim, PPOSettings(epochs=2, minibatches=2), settings, seed=2,
+                     run_dir=tmp_path / "a")
+    with pytest.raises(RuntimeError, match="simulated"):
+        train(system, SMALL, optim, PPOSettings(epochs=2, minibatches=2), settings, seed=2, run_dir=tmp_path / "b",
+              monitors=[_Stop(6)])
+    resumed = train(system, SMALL, optim, PPOSettings(epochs=2, minibatches=2), settings, seed=2,
+                    run_dir=tmp_path / "b", resume=True)
+    for k, v in straight.policy.state_dict().items():
+        assert torch.equal(v, resumed.policy.state_dict()[k]), k
+    assert resumed.metrics["eval_cost"] == straight.metrics["eval_cost"]
 
 
 def test_bad_ppo_settings_are_named():
@@ -88,5 +116,5 @@ def test_bad_ppo_settings_are_named():
 def test_ppo_refuses_the_gradient_trainers_schedules(tmp_path):
     settings = TrainSettings(iterations=2, batch_size=4, horizon=10, eval_batch=4, horizon_start=5)
     with pytest.raises(ValueError, match="horizon_start"):
-        train_ppo(envs.build("pendulum"), SMALL, OptimSettings(), PPOSettings(), settings, seed=0, run_dir=tmp_path)
+        train(envs.build("pendulum"), SMALL, OptimSettings(), PPOSettings(), settings, seed=0, run_dir=tmp_path)
     assert not (tmp_path / "checkpoint.pt").exists()

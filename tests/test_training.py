@@ -10,11 +10,12 @@ import scipy.linalg
 import torch
 
 import envs
-from apg import (Analytic, OptimSettings, Policy, PolicySettings, TrainSettings, load_policy, make_policy, rollout, train)
+from apg import (Analytic, OptimSettings, Policy, PolicySettings, TrainSettings, load_run, make_policy, rollout, train)
 from apg.checkpoint import CheckpointError, load_checkpoint
 from apg.optim import learning_rate
 from apg.policies import Normaliser
-from apg.trainer import Monitor, NonFiniteError, RunExistsError
+from apg.train import Monitor, NonFiniteError, RunExistsError
+from apg.updates import GradientUpdate
 
 LINEAR = PolicySettings(kind="linear", bias=False, normalise="none", squash="none", output_gain=1.0)
 QUIET = dict(figure_every=0, eval_batch=64)
@@ -78,8 +79,7 @@ def _settings(**kw):
 def _train(run_dir, settings, resume=False, monitors=(), seed=3, policy=PolicySettings(hidden=(16,),
                                                                                     normalise="running")):
     return train(envs.build("pendulum"), policy, OptimSettings(lr=1e-2), Analytic(), settings, seed=seed,
-                 run_dir=run_dir, resume=resume, config={"seed": seed, "train": {"iterations": settings.iterations}},
-                 monitors=monitors)
+                 run_dir=run_dir, resume=resume, monitors=monitors)
 
 
 def _params(policy):
@@ -118,6 +118,46 @@ def test_interrupt_saves_a_checkpoint_that_resumes_exactly(tmp_path):
         assert torch.equal(v, resumed.policy.state_dict()[k]), k
 
 
+class _InterruptedEstimate(Analytic):
+    """Ctrl-C inside the 4th estimate: after the minibatch was drawn, before any parameter changed."""
+
+    calls = 0
+
+    def estimate(self, *args):
+        type(self).calls += 1
+        if type(self).calls == 4:
+            raise KeyboardInterrupt
+        return super().estimate(*args)
+
+
+class _InterruptedAfterStep(GradientUpdate):
+    """Ctrl-C in the 4th update, after the optimiser stepped but before the loop counted the iteration."""
+
+    calls = 0
+
+    def step(self, *args):
+        result = super().step(*args)
+        type(self).calls += 1
+        if type(self).calls == 4:
+            raise KeyboardInterrupt
+        return result
+
+
+@pytest.mark.parametrize("method", [_InterruptedEstimate(), _InterruptedAfterStep(Analytic())])
+def test_an_interrupt_inside_an_iteration_saves_the_last_completed_one(tmp_path, method):
+    """The saved state is the one after iteration 3 whatever the moment of the interrupt in iteration 4, so the
+    resumed run is bit-identical to one never stopped (a state saved mid-iteration would differ)."""
+    straight = _train(tmp_path / "a", _settings(iterations=8))
+    with pytest.raises(KeyboardInterrupt):
+        train(envs.build("pendulum"), PolicySettings(hidden=(16,), normalise="running"), OptimSettings(lr=1e-2),
+              method, _settings(iterations=8, checkpoint_every=100), seed=3, run_dir=tmp_path / "b")
+    assert load_checkpoint(tmp_path / "b")["iteration"] == 3
+    resumed = _train(tmp_path / "b", _settings(iterations=8, checkpoint_every=100), resume=True)
+    for k, v in _params(straight.policy).items():
+        assert torch.equal(v, resumed.policy.state_dict()[k]), k
+    assert resumed.metrics["env_steps"] == straight.metrics["env_steps"]
+
+
 def test_existing_run_directory_is_refused_and_left_untouched(tmp_path):
     _train(tmp_path, _settings())
     before = {p.name: p.read_bytes() for p in tmp_path.iterdir() if p.is_file()}
@@ -127,10 +167,23 @@ def test_existing_run_directory_is_refused_and_left_untouched(tmp_path):
     assert before == after
 
 
-def test_resume_with_different_settings_names_the_key(tmp_path):
+def test_resume_with_different_settings_names_the_fields(tmp_path):
     _train(tmp_path, _settings())
-    with pytest.raises(RunExistsError, match="seed"):
+    with pytest.raises(RunExistsError, match=r"seed \(3 -> 4\)"):
         _train(tmp_path, _settings(), resume=True, seed=4)
+    with pytest.raises(RunExistsError, match=r"train.horizon \(20 -> 25\), train.batch_size|train.batch_size.*train.horizon"):
+        _train(tmp_path, _settings(horizon=25, batch_size=8), resume=True)
+
+
+def test_resume_refuses_another_plant(tmp_path):
+    """The record holds the plant's own parameter values: a resume on a different plant names the parameter."""
+    settings = _settings(iterations=4)
+    policy = PolicySettings(hidden=(16,))
+    train(envs.build("pendulum", params={"mass": 0.7}), policy, OptimSettings(), Analytic(), settings, seed=0,
+          run_dir=tmp_path)
+    with pytest.raises(RunExistsError, match=r"system.params.mass \(0.7 -> 1.0\)"):
+        train(envs.build("pendulum"), policy, OptimSettings(), Analytic(), settings, seed=0, run_dir=tmp_path,
+              resume=True)
 
 
 def test_non_finite_rollout_stops_with_iteration_and_keeps_last_checkpoint(tmp_path):
@@ -161,13 +214,12 @@ def test_metrics_file_has_the_documented_keys(tmp_path):
     assert metrics == result.metrics
 
 
-def test_load_policy_rebuilds_the_trained_policy(tmp_path):
+def test_load_run_rebuilds_the_trained_policy(tmp_path):
     result = _train(tmp_path, _settings())
-    policy, state = load_policy(tmp_path, envs.build("pendulum"))
+    run = load_run(tmp_path)
     obs = torch.randn(5, 3)
-    torch.testing.assert_close(policy(obs), result.policy(obs), rtol=0, atol=0)
-    with pytest.raises(ValueError, match="does not match"):
-        load_policy(tmp_path, envs.build("cartpole"))
+    torch.testing.assert_close(run.policy(obs), result.policy(obs), rtol=0, atol=0)
+    assert run.record == result.record and run.iteration == 8
 
 
 def test_corrupt_checkpoint_is_a_clear_error(tmp_path):

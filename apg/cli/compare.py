@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import hashlib
+import json
 import logging
 import platform
 import sys
@@ -13,13 +15,13 @@ import yaml
 from hydra.core.hydra_config import HydraConfig
 from omegaconf import DictConfig
 
-from apg.checkpoint import CheckpointError, atomic_write_text, config_digest
-from apg.cli import compare_config  # registers the schema
+from apg.checkpoint import CheckpointError, atomic_write_text
+from apg.cli import config  # registers the schemas
 from apg.compare import Entrant, gradient_study, run_race
 from apg.monitor import ProgressMonitor, TensorBoardMonitor
 from apg.policies import make_policy
 from apg.reports.compare_report import FILES, summary_table, write_outputs
-from apg.trainer import DTYPES, RunExistsError, load_policy
+from apg.runs import DTYPES, RunExistsError, SystemSpec, load_run
 
 CONFIG_DIR = str(Path(__file__).resolve().parents[2] / "configs")
 log = logging.getLogger("apg.compare")
@@ -27,7 +29,7 @@ log = logging.getLogger("apg.compare")
 
 def run(cfg: DictConfig) -> list[dict] | None:
     """Run what the config enables; returns the race summary rows (also in ``race_summary.csv``)."""
-    spec = compare_config.build(cfg)
+    spec = config.build_compare(cfg)
     torch.set_num_threads(spec.threads)
     out = Path(HydraConfig.get().runtime.output_dir)
     if (out / FILES["report"]).exists() or (out / "race").exists():
@@ -37,7 +39,7 @@ def run(cfg: DictConfig) -> list[dict] | None:
     atomic_write_text(out / "config.yaml", yaml.safe_dump(spec.config, sort_keys=False))
     notes = [f"System: `{spec.system.name}` (dt {spec.system.dt} s, {spec.system.integrator}); policy "
              f"{spec.policy.kind} {list(spec.policy.hidden) if spec.policy.kind == 'mlp' else ''}; config digest "
-             f"`{config_digest(spec.config)}`" + (f"; experiment `{spec.config['experiment']}`"
+             f"`{hashlib.sha256(json.dumps(spec.config, sort_keys=True, default=str).encode()).hexdigest()[:16]}`" + (f"; experiment `{spec.config['experiment']}`"
                                                  if spec.config.get("experiment") else ""),
              f"Machine: {platform.processor() or platform.machine()}, torch {torch.__version__}, "
              f"{spec.threads} intra-op thread(s); CPU only."]
@@ -45,14 +47,24 @@ def run(cfg: DictConfig) -> list[dict] | None:
     study_rows = None
     if spec.study.enabled:
         if spec.checkpoint:
-            policy, _ = load_policy(Path(spec.checkpoint), spec.system)
-            notes.append(f"Gradient study at the trained policy in `{spec.checkpoint}`.")
+            loaded = load_run(spec.checkpoint)
+            if loaded.system.name != spec.system.name:
+                raise ValueError(f"checkpoint={spec.checkpoint} trained {loaded.system.name!r}, but this comparison "
+                                 f"is on {spec.system.name!r}; set system={loaded.system.name} or choose another run")
+            policy, system = loaded.policy, loaded.system
+            if SystemSpec.of(system) != SystemSpec.of(spec.system):
+                log.warning("the study runs on the plant %s was trained on, not on the configured system (they "
+                            "differ in parameters, task, dt or integrator)", spec.checkpoint)
+            notes.append(f"Gradient study at the trained policy in `{spec.checkpoint}`, on the plant it was "
+                         f"trained on.")
+            study_rows = gradient_study(system, policy, spec.study_estimators, spec.study, seed=spec.seed,
+                                        progress=log.info)
         else:
             policy = make_policy(spec.policy, spec.system, torch.Generator().manual_seed(spec.seed + 1),
                                  dtype=DTYPES[spec.study.dtype])
             notes.append(f"Gradient study at the initial policy of seed {spec.seed} (the trainer's initialisation).")
-        study_rows = gradient_study(spec.system, policy, spec.study_estimators, spec.study, seed=spec.seed,
-                                    progress=log.info)
+            study_rows = gradient_study(spec.system, policy, spec.study_estimators, spec.study, seed=spec.seed,
+                                        progress=log.info)
 
     result = None
     if spec.race.enabled:

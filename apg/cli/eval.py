@@ -11,7 +11,7 @@ import torch
 from omegaconf import DictConfig
 
 from apg.checkpoint import CheckpointError
-from apg.cli import schemas  # registers the schemas
+from apg.cli import config  # registers the schemas
 from apg.export import PolicyFileError
 from apg.report import run_report
 
@@ -42,7 +42,7 @@ def _bar(enabled: bool):
 
 def run(cfg: DictConfig) -> dict:
     """Evaluate from a composed config; returns the numbers (also in ``evaluation.json``)."""
-    spec = schemas.build_eval(cfg)
+    spec = config.build_eval(cfg)
     torch.set_num_threads(spec["threads"])
     numbers = run_report(spec["sources"], spec["output"], spec["settings"], labels=spec["labels"],
                          progress=_bar(spec["progress"]), say=log.info)

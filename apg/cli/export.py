@@ -11,7 +11,7 @@ import torch
 from omegaconf import DictConfig
 
 from apg.checkpoint import CheckpointError
-from apg.cli import schemas  # registers the schemas
+from apg.cli import config  # registers the schemas
 from apg.export import PolicyFileError, VerificationError, export
 
 CONFIG_DIR = str(Path(__file__).resolve().parents[2] / "configs")
@@ -20,7 +20,7 @@ log = logging.getLogger("apg.export")
 
 def run(cfg: DictConfig) -> dict:
     """Export from a composed config; returns the verification record (also written beside the file)."""
-    spec = schemas.build_export(cfg)
+    spec = config.build_export(cfg)
     torch.set_num_threads(spec["threads"])
     result = export(spec["source"], spec["output"], spec["settings"], overwrite=spec["overwrite"],
                     progress=log.info)

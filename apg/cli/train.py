@@ -15,12 +15,13 @@ import torch
 from hydra.core.hydra_config import HydraConfig
 from omegaconf import DictConfig
 
-from apg import config as app_config  # registers the schemas
+from apg.cli import config  # registers the schemas
 from apg import distributed
 from apg.checkpoint import CheckpointError
-from apg.estimators import make_estimator
 from apg.monitor import ProgressMonitor, TensorBoardMonitor
-from apg.trainer import NonFiniteError, RunExistsError, train
+from apg.runs import RunExistsError
+from apg.train import train_record
+from apg.updates import NonFiniteError
 
 CONFIG_DIR = str(Path(__file__).resolve().parents[2] / "configs")
 log = logging.getLogger("apg.train")
@@ -28,18 +29,16 @@ log = logging.getLogger("apg.train")
 
 def run(cfg: DictConfig) -> dict:
     """Train from a composed config; returns the final metrics (also written to ``metrics.json``)."""
-    spec = app_config.build(cfg)
+    spec = config.build_train(cfg)
     torch.set_num_threads(spec.threads)
     run_dir = Path(HydraConfig.get().runtime.output_dir)
     shard = distributed.from_environment()
     if shard.parallel and shard.main:
         log.info("data-parallel training: the minibatch of %d initial states is split over %d processes",
-                 spec.train.batch_size, shard.world_size)
+                 spec.record.train.batch_size, shard.world_size)
     try:
-        result = train(spec.system, spec.policy, spec.optim, make_estimator(spec.estimator), spec.train,
-                       seed=spec.seed, run_dir=run_dir, resume=spec.resume, config=spec.config,
-                       monitors=[TensorBoardMonitor(), ProgressMonitor(spec.progress)], ensemble=spec.ensemble,
-                       shard=shard)
+        result = train_record(spec.record, run_dir, resume=spec.resume, shard=shard,
+                              monitors=[TensorBoardMonitor(), ProgressMonitor(spec.progress)])
     except BaseException:
         distributed.shutdown(shard, wait=False)
         raise
