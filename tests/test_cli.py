@@ -99,3 +99,21 @@ def test_every_system_option_composes():
         with initialize_config_dir(config_dir=CONFIG_DIR, version_base="1.3"):
             spec = app_config.build(compose(config_name="train", overrides=[f"system={option}"]))
         assert spec.system.dt > 0
+
+
+def test_help_names_the_command_and_only_its_own_choices(tmp_path):
+    out = apg_train("--help", cwd=tmp_path)
+    assert out.returncode == 0, out.stderr
+    text = out.stdout
+    assert text.startswith("apg-train:") and "powered by Hydra" not in text
+    for name in EXPERIMENTS:
+        assert name in text, name  # e.g. hollowmere_arm_upright, offered as +experiment=NAME
+    for group in ("system", "policy", "optim", "estimator"):
+        for option in (Path(CONFIG_DIR) / group).glob("*.yaml"):
+            assert option.stem in text, (group, option.stem)
+    # Hydra's stored schemas are not choices, and apg-compare's presets are not apg-train's.
+    assert "schema_" not in text and "schema," not in text
+    compare_presets = [p.stem for p in Path(CONFIG_DIR).rglob("compare/*.yaml")]
+    assert compare_presets, "the compare presets moved: point this test at them"
+    for name in compare_presets:
+        assert name not in text, name

@@ -8,12 +8,13 @@ from __future__ import annotations
 
 import logging
 import sys
+import textwrap
 from pathlib import Path
 
 import hydra
 import torch
 from hydra.core.hydra_config import HydraConfig
-from omegaconf import DictConfig
+from omegaconf import DictConfig, OmegaConf
 
 from apg import config as app_config  # registers the schemas
 from apg import distributed
@@ -24,6 +25,16 @@ from apg.trainer import NonFiniteError, RunExistsError, train
 
 CONFIG_DIR = str(Path(__file__).resolve().parents[2] / "configs")
 log = logging.getLogger("apg.train")
+
+
+def choices(group: str, indent: int = 2) -> str:
+    """The YAML files of a config group, comma-separated and wrapped under a help line indented ``indent``
+    spaces: what ``--help`` offers (Hydra's stored ``schema*`` entries are not choices)."""
+    names = sorted(p.stem for p in (Path(CONFIG_DIR) / group).glob("*.yaml"))
+    return textwrap.fill(", ".join(names), width=116 - indent, subsequent_indent=" " * indent, break_on_hyphens=False)
+
+
+OmegaConf.register_new_resolver("apg_train_choices", choices, replace=True)
 
 
 def run(cfg: DictConfig) -> dict:
