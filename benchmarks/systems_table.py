@@ -3,7 +3,7 @@
 Each preset trains through the same code path as ``apg-train`` (a subprocess of ``python -m apg.cli.train``), and
 its row is read from the run's ``metrics.json``: preset, system, seed, held-out success, held-out cost,
 iterations and wall seconds, with a note when held-out success falls short of 95 %. ``--ensembles`` also trains
-each ensemble preset's nominal twin (the same settings, ``system.ensemble={}``) and runs ``python -m apg.cli.eval``
+each ensemble preset's nominal twin (the same settings, its ``system.ensemble`` ranges deleted) and runs ``python -m apg.cli.eval``
 on the pair, reporting the parameter range over which each holds >= 90 % success (the README's ensemble table).
 
     python benchmarks/systems_table.py --only hollowmere_arm_upright larkspur_gymnast_pump_up --seeds 0 1 2
@@ -22,6 +22,8 @@ import subprocess
 import sys
 import time
 from pathlib import Path
+
+import yaml
 
 ROOT = Path(__file__).resolve().parents[1]
 PRESETS = sorted(p.stem for p in (ROOT / "configs" / "experiment").glob("*.yaml"))
@@ -71,7 +73,9 @@ def train(preset: str, seed: int, run_dir: Path, reuse: bool, extra: tuple[str, 
 def ensemble_ranges(preset: str, seed: int, runs: Path, reuse: bool) -> dict:
     """Train the preset's nominal twin, run apg-eval on the pair and return the held ranges per parameter."""
     nominal = runs / f"{preset}_nominal_{seed}"
-    train(preset, seed, nominal, reuse, extra=("system.ensemble={}",))
+    # Delete each ensemble range (Hydra's ~key): "system.ensemble={}" would merge into the preset's and change nothing.
+    ranges = yaml.safe_load((ROOT / "configs" / "experiment" / f"{preset}.yaml").read_text())["system"]["ensemble"]
+    train(preset, seed, nominal, reuse, extra=tuple(f"~system.ensemble.{name}" for name in ranges))
     ensemble = runs / f"{preset}_{seed}"
     output = runs / f"{preset}_{seed}_vs_nominal"
     sweeps = [f"+eval.robustness.params.{name}=[{low},{high}]" for name, (low, high) in ENSEMBLE_SWEEPS[preset].items()]
