@@ -6,8 +6,8 @@ sec. 11.3, after Spong, *The swing up control problem for the acrobot* (IEEE Con
 ``th1`` is the shoulder angle from hanging straight down, ``th2`` the elbow angle relative to the first link.
 The task is the textbook one: raise the tip one link length above the shoulder. The start box is the invented
 Larkspur Science Hall robotics club's two-link gymnast: a club member steadies it by hand under the bar and lets
-go, so it hangs within 0.2 rad of vertical, hip bent up to 0.3 rad either way, swaying at up to 0.25 rad/s at
-the shoulder and 0.4 rad/s at the hip. Sutton & Barto also clip velocities (4 pi and 9 pi rad/s); that is not
+go, so it hangs within 0.15 rad of vertical, hip bent up to 0.2 rad either way, swaying at up to 0.1 rad/s at
+the shoulder and 0.15 rad/s at the hip. Sutton & Barto also clip velocities (4 pi and 9 pi rad/s); that is not
 differentiable and is left out here.
 """
 
@@ -44,8 +44,8 @@ class AcrobotTask:
     w_height: float = 1.0  # weight on (l1 + l2 - tip height) / (l1 + l2)
     w_velocity: float = unit("s^2/rad^2", 0.001)
     w_torque: float = 0.01  # weight on (tau / torque_limit)^2
-    init_low: tuple[float, ...] = (-0.2, -0.3, -0.25, -0.4)  # th1, th2 (rad), th1d, th2d (rad/s)
-    init_high: tuple[float, ...] = (0.2, 0.3, 0.25, 0.4)
+    init_low: tuple[float, ...] = (-0.15, -0.2, -0.1, -0.15)  # th1, th2 (rad), th1d, th2d (rad/s)
+    init_high: tuple[float, ...] = (0.15, 0.2, 0.1, 0.15)
     goal_height: float = unit("m", 1.0)  # success: tip height above the shoulder exceeds this at some time
 
     def __post_init__(self) -> None:
