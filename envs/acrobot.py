@@ -4,8 +4,11 @@ Equations and the parameter set (unit masses and lengths, centres of mass at mid
 ``g = 9.8``, torque ``|tau| <= 1``) follow Sutton & Barto, *Reinforcement Learning: An Introduction* (1998),
 sec. 11.3, after Spong, *The swing up control problem for the acrobot* (IEEE Control Systems 1995).
 ``th1`` is the shoulder angle from hanging straight down, ``th2`` the elbow angle relative to the first link.
-The task is the textbook one: raise the tip one link length above the shoulder. Sutton & Barto also clip
-velocities (4 pi and 9 pi rad/s); that is not differentiable and is left out here.
+The task is the textbook one: raise the tip one link length above the shoulder. The start box is the invented
+Larkspur Science Hall robotics club's two-link gymnast: a club member steadies it by hand under the bar and lets
+go, so it hangs within 0.15 rad of vertical, hip bent up to 0.2 rad either way, swaying at up to 0.1 rad/s at
+the shoulder and 0.15 rad/s at the hip. Sutton & Barto also clip velocities (4 pi and 9 pi rad/s); that is not
+differentiable and is left out here.
 """
 
 from __future__ import annotations
@@ -43,8 +46,8 @@ class AcrobotTask:
     w_height: float = bounded(1.0, nonnegative=True)  # weight on (l1 + l2 - tip height) / (l1 + l2)
     w_velocity: float = unit("s^2/rad^2", 0.001, nonnegative=True)
     w_torque: float = bounded(0.01, nonnegative=True)  # weight on (tau / torque_limit)^2
-    init_low: tuple[float, ...] = (-0.1, -0.1, -0.1, -0.1)  # th1, th2 (rad), th1d, th2d (rad/s)
-    init_high: tuple[float, ...] = (0.1, 0.1, 0.1, 0.1)
+    init_low: tuple[float, ...] = (-0.15, -0.2, -0.1, -0.15)  # th1, th2 (rad), th1d, th2d (rad/s)
+    init_high: tuple[float, ...] = (0.15, 0.2, 0.1, 0.15)
     # success: tip height above the shoulder exceeds this at some time
     goal_height: float = unit("m", 1.0, positive=True)
 

@@ -195,3 +195,21 @@ def test_system_option_values_arrive_in_the_system(option):
         for f in dataclasses.fields(record):
             if f.name not in raw.get(part, {}):
                 assert getattr(record, f.name) == getattr(default, f.name), f"{part}.{f.name}"
+
+
+def test_help_names_the_command_and_only_its_own_choices(tmp_path):
+    out = subprocess_entry("apg.cli.train", "--help", cwd=tmp_path)
+    assert out.returncode == 0, out.stderr
+    text = out.stdout
+    assert text.startswith("apg-train:") and "powered by Hydra" not in text
+    for name in EXPERIMENTS:
+        assert name in text, name  # e.g. hollowmere_arm_upright, offered as +experiment=NAME
+    for group in ("system", "policy", "optim", "estimator"):
+        for option in (Path(CONFIG_DIR) / group).glob("*.yaml"):
+            assert option.stem in text, (group, option.stem)
+    # Hydra's stored schemas are not choices, and apg-compare's presets are not apg-train's.
+    assert "schema_" not in text and "schema," not in text
+    compare_presets = [p.stem for p in Path(CONFIG_DIR).rglob("compare/*.yaml")]
+    assert compare_presets, "the compare presets moved: point this test at them"
+    for name in compare_presets:
+        assert name not in text, name

@@ -180,8 +180,9 @@ def test_jacobian_sigma_upright_pendulum_matches_linearisation():
 
 
 def test_exploding_pendulum_warns_and_stable_lqr_does_not(di):
-    # Pendulum 1e-9 rad from upright, zero torque, 6 s: from the linearisation sigma ~ exp(sqrt(g/l) t) ~ 1e8 at
-    # the end (the angle is still only ~0.1 rad), and the costate collects the late costs amplified as much.
+    # Pendulum 1e-9 rad from upright, zero torque, 120 steps (4.8 s with the defaults, sqrt(g/l) = 3.9 /s): from
+    # the linearisation sigma ~ exp(sqrt(g/l) t) ~ 1e8 at the end (the angle is still only ~0.1 rad), and the
+    # costate collects the late costs amplified as much.
     pendulum = envs.build("pendulum")
     x0 = torch.tensor([[1e-9, 0.0], [-1e-9, 0.0]], dtype=F64)
     exploding = gradient_profile(pendulum, zero_torque(pendulum.obs_dim), x0, 120)

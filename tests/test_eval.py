@@ -126,21 +126,23 @@ def test_wilson_interval_matches_scipy():
 
 
 def test_metrics_on_a_trajectory_built_by_hand():
-    """A pendulum that arrives upright at step 10 and stays: success is completed after hold_time = 1 s (20 steps)
-    at t = 30 * dt; a second never arrives. Saturation and limit counts follow from the built actions and states."""
+    """A pendulum that arrives upright at step 10 and stays: success is completed once it has been upright for
+    hold_time (hold steps of dt, from the defaults), at t = (10 + hold - 1) * dt; a second never arrives.
+    Saturation and limit counts follow from the built actions and states."""
     system = envs.build("pendulum")
-    T = 60
+    hold = round(system.task.hold_time / system.dt)  # 25 steps of 0.04 s with the defaults
+    T = 10 + hold + 30
     states = torch.zeros(T + 1, 2, 2, dtype=torch.float64)
     states[:10, 0, 0] = 1.0  # away from upright until step 10
     states[:, 1, 0] = math.pi  # hanging for ever
-    states[5, 1, 1] = 9.0  # one moment over the 8 rad/s limit
+    states[5, 1, 1] = 9.0  # one moment over the 8 rad/s limit passed below
     actions = torch.zeros(T, 2, 1, dtype=torch.float64)
-    actions[:15, 0, 0] = 3.0  # at the 3 N m limit for 15 of 120 steps
+    actions[:15, 0, 0] = system.params.torque_limit  # at the limit for 15 of the 2 T steps
     traj = Trajectory(states, actions, torch.zeros(T, 2, dtype=torch.float64), torch.zeros(2, dtype=torch.float64))
     run = ClosedLoop(system, traj, actions, system.success(states, actions))
     tts = time_to_success(run)
-    assert tts[0].item() == pytest.approx(29 * system.dt) and math.isnan(tts[1].item())
-    assert saturation(run).item() == pytest.approx(15 / 120)
+    assert tts[0].item() == pytest.approx((10 + hold - 1) * system.dt) and math.isnan(tts[1].item())
+    assert saturation(run).item() == pytest.approx(15 / (2 * T))
     assert violations(run, {"angular_velocity": (-8.0, 8.0)}) == {"angular_velocity": 0.5, "any": 0.5}
     s = evaluation_metrics(run, {"angular_velocity": (-8.0, 8.0)})
     assert s["success_rate"] == 0.5 and s["time_to_success_s"]["reached"] == 1

@@ -15,8 +15,10 @@ from __future__ import annotations
 
 import dataclasses
 import os
+import textwrap
 import typing
 from dataclasses import dataclass, field
+from pathlib import Path
 from typing import Any, Dict, List, Optional
 
 from hydra.core.config_store import ConfigStore
@@ -171,13 +173,25 @@ def rank_suffix() -> str:
     return "" if rank in ("", "0") else f".rank{rank}"
 
 
+CONFIG_DIR = Path(__file__).resolve().parents[2] / "configs"
+
+
+def choices(group: str, indent: int = 2) -> str:
+    """The YAML files of a config group, comma-separated and wrapped under a help line indented ``indent``
+    spaces: what ``--help`` offers (Hydra's stored ``schema*`` entries are not choices)."""
+    names = sorted(p.stem for p in (CONFIG_DIR / group).glob("*.yaml"))
+    return textwrap.fill(", ".join(names), width=116 - indent, subsequent_indent=" " * indent, break_on_hyphens=False)
+
+
 def register() -> None:
     """Put every schema in Hydra's ConfigStore and apg's resolvers in OmegaConf (idempotent).
 
     ``${apg_invocation_keys:}`` lists :data:`apg.runs.INVOCATION_KEYS`, so the sweep folder names leave out the
-    same switches the run record leaves out."""
+    same switches the run record leaves out; ``${apg_train_choices:GROUP}`` lists a group's choices for
+    ``apg-train --help``."""
     OmegaConf.register_new_resolver("apg_rank_suffix", rank_suffix, replace=True)
     OmegaConf.register_new_resolver("apg_invocation_keys", lambda: list(INVOCATION_KEYS), replace=True)
+    OmegaConf.register_new_resolver("apg_train_choices", choices, replace=True)
     cs = ConfigStore.instance()
     cs.store(name="app_schema", node=AppSchema)
     for cls in envs.SYSTEMS.values():
