@@ -23,7 +23,7 @@ from typing import Any, Iterable, Sequence
 import yaml
 from scipy import stats
 
-from apg.runs import PER_SEED_KEYS
+from apg.runs import PER_SEED_KEYS, flatten
 
 METRICS = {"eval_cost": "held-out cost", "success_rate": "held-out success rate"}
 IGNORED_KEYS = PER_SEED_KEYS  # differ between the seeds of one setting, or change nothing (apg.runs)
@@ -68,16 +68,6 @@ class Run:
     metrics: dict[str, Any] | None
 
 
-def _flatten(d: dict[str, Any], prefix: str = "") -> dict[str, Any]:
-    out: dict[str, Any] = {}
-    for k, v in d.items():
-        if isinstance(v, dict) and v:
-            out.update(_flatten(v, f"{prefix}{k}."))
-        else:
-            out[f"{prefix}{k}"] = v
-    return out
-
-
 def find_runs(sweep_dir: Path) -> list[Run]:
     """Every job directory under ``sweep_dir`` (one holding ``config.yaml``), hidden folders such as
     ``.submitit`` skipped, in path order.
@@ -94,7 +84,7 @@ def find_runs(sweep_dir: Path) -> list[Run]:
             continue
         metrics_path = cfg.parent / "metrics.json"
         metrics = json.loads(metrics_path.read_text()) if metrics_path.exists() else None
-        runs.append(Run(cfg.parent, _flatten(yaml.safe_load(cfg.read_text()) or {}), metrics))
+        runs.append(Run(cfg.parent, flatten(yaml.safe_load(cfg.read_text()) or {}), metrics))
     if not runs:
         raise FileNotFoundError(f"{sweep_dir} holds no job directory (a folder with config.yaml and metrics.json); "
                                 f"pass the directory of a multirun, e.g. runs/multirun/<date>_<time>")
