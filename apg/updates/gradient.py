@@ -36,7 +36,6 @@ class GradientUpdate(Update):
     def __init__(self, estimator: GradientEstimator) -> None:
         self.estimator = estimator
         self.settings = getattr(estimator, "settings", None)
-        self.differentiable = estimator.name in ("analytic", "terminal_value")
 
     @property
     def title(self) -> str:
