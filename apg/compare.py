@@ -304,7 +304,7 @@ class _Recorder(Monitor):
                             "success_rate": result.success_rate})
 
 
-MonitorFactory = Callable[[str, Entrant, int, Path], Sequence[Monitor]]
+MonitorFactory = Callable[[], Sequence[Monitor]]  # fresh monitors for each run (a writer per run directory)
 
 
 @dataclass
@@ -373,7 +373,7 @@ def run_race(system: System, policy_settings: PolicySettings, entrants: Sequence
             for seed in settings.seeds:
                 run_dir = Path(out_dir) / "race" / budget / entrant.label / f"seed{seed}"
                 recorder = _Recorder(evaluation_schedule(iterations, settings.evaluations))
-                extra = list(monitors(budget, entrant, seed, run_dir)) if monitors else []
+                extra = list(monitors()) if monitors else []
                 record = _record(system, policy_settings, entrant, train_settings, seed)
                 status = _one_run(record, run_dir, [recorder, *extra])
                 if budget == "steps" and recorder.compute > 0:

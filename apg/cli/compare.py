@@ -17,7 +17,7 @@ from omegaconf import DictConfig
 
 from apg.checkpoint import CheckpointError, atomic_write_text
 from apg.cli import config  # registers the schemas
-from apg.compare import Entrant, gradient_study, run_race
+from apg.compare import gradient_study, run_race
 from apg.monitor import ProgressMonitor, TensorBoardMonitor
 from apg.policies import make_policy
 from apg.reports.compare_report import FILES, summary_table, write_outputs
@@ -68,11 +68,8 @@ def run(cfg: DictConfig) -> list[dict] | None:
 
     result = None
     if spec.race.enabled:
-        def monitors(budget: str, entrant: Entrant, seed: int, run_dir: Path):
-            bar = ProgressMonitor(spec.progress)
-            return [TensorBoardMonitor(), bar]
-
-        result = run_race(spec.system, spec.policy, spec.entrants, spec.race, out, monitors=monitors,
+        result = run_race(spec.system, spec.policy, spec.entrants, spec.race, out,
+                          monitors=lambda: [TensorBoardMonitor(), ProgressMonitor(spec.progress)],
                           progress=log.info)
     summary = write_outputs(out, spec.system.name, spec.system.success_criterion, study_rows, result, notes)
     if summary is not None:
