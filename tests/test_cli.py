@@ -213,3 +213,11 @@ def test_help_names_the_command_and_only_its_own_choices(tmp_path):
     assert compare_presets, "the compare presets moved: point this test at them"
     for name in compare_presets:
         assert name not in text, name
+
+
+def test_bare_apg_train_is_the_default_preset():
+    """The README promises that plain ``apg-train`` trains the hollowmere_arm_upright preset: the two compose to
+    records that differ in nothing but the preset's name."""
+    bare = app_config.build_train(composed()).record
+    preset = app_config.build_train(composed("+experiment=hollowmere_arm_upright")).record
+    assert bare.differences(preset) == [("experiment", None, "hollowmere_arm_upright")]
