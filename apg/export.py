@@ -257,6 +257,11 @@ def report_path_for(onnx_path: Path) -> Path:
     return Path(onnx_path).with_suffix(".verification.json")
 
 
+def rejected_report_path_for(onnx_path: Path) -> Path:
+    """Where the record of a failed verification goes: beside, never over, a file that passed."""
+    return Path(onnx_path).with_suffix(".rejected.verification.json")
+
+
 @contextlib.contextmanager
 def _quiet_logging():
     """The exporter and its graph optimiser log every pass at INFO; none of it concerns the user."""
@@ -424,16 +429,19 @@ def export(source: Path | str, output: Path | str | None = None, settings: Expor
               hashlib.sha256(data).hexdigest(), "checkpoint": str(ckpt_file), "record_digest":
               meta[PREFIX + "record_digest"], **record}
     report = report_path_for(out)
-    atomic_write_text(report, json.dumps(record, indent=2) + "\n")
     if not record["passed"]:
-        if out.exists() and overwrite:
-            out.unlink()  # an old file at this path would now contradict the failed record beside it
+        # An earlier file that passed, and its record, stay exactly as they were; the failure gets its own record.
+        rejected = rejected_report_path_for(out)
+        atomic_write_text(rejected, json.dumps(record, indent=2) + "\n")
         o, c = record["output_parity"], record["closed_loop_parity"]
+        kept = f"; the earlier {out.name} and its record are kept unchanged" if out.exists() else ""
         raise VerificationError(
-            f"the exported policy failed verification; nothing was written to {out}. Output parity: max scaled "
-            f"difference {o['max_scaled_diff']:.3g} (bound {o['tolerance']:.3g}); closed-loop parity: relative cost "
-            f"difference {c['rel_cost_diff']:.3g} (bound {c['cost_rtol']:.3g}). Details in {report}")
-    atomic_write_bytes(out, data)
+            f"the exported policy failed verification; nothing was written to {out}{kept}. Output parity: max "
+            f"scaled difference {o['max_scaled_diff']:.3g} (bound {o['tolerance']:.3g}); closed-loop parity: "
+            f"relative cost difference {c['rel_cost_diff']:.3g} (bound {c['cost_rtol']:.3g}). Details in {rejected}")
+    atomic_write_bytes(out, data)  # each write is atomic: the file, then its record, replace the old ones
+    atomic_write_text(report, json.dumps(record, indent=2) + "\n")
+    rejected_report_path_for(out).unlink(missing_ok=True)  # a stale failure record would contradict this file
     return ExportResult(out, report, record)
 
 

@@ -170,9 +170,34 @@ def test_failed_verification_is_an_error_and_writes_no_file(runs, tmp_path, monk
     monkeypatch.setattr(ex, "_to_onnx", tampered)
     with pytest.raises(VerificationError, match="failed verification"):
         export(runs["cartpole"], tmp_path / "bad.onnx", FAST)
-    assert not (tmp_path / "bad.onnx").exists()
-    record = json.loads((tmp_path / "bad.verification.json").read_text())
+    assert not (tmp_path / "bad.onnx").exists() and not (tmp_path / "bad.verification.json").exists()
+    record = json.loads((tmp_path / "bad.rejected.verification.json").read_text())
     assert record["passed"] is False and record["output_parity"]["max_scaled_diff"] > 1e-3
+
+
+def test_a_failed_re_export_keeps_the_verified_file(runs, tmp_path, monkeypatch):
+    """overwrite=true replaces a verified file only with one that passed: a failing re-export leaves the old
+    .onnx and its verification record byte for byte, and records the failure beside them."""
+    import apg.export as ex
+
+    good = export(runs["cartpole"], tmp_path / "p.onnx", FAST)
+    before = {p: p.read_bytes() for p in (good.onnx_path, good.report_path)}
+    real = ex._to_onnx
+
+    def tampered(policy, obs_dim, opset):
+        bad = __import__("copy").deepcopy(policy)
+        with torch.no_grad():
+            bad.net[-1].bias += 0.02
+        return real(bad, obs_dim, opset)
+
+    monkeypatch.setattr(ex, "_to_onnx", tampered)
+    with pytest.raises(VerificationError, match="p.onnx and its record are kept unchanged.*rejected"):
+        export(runs["cartpole"], tmp_path / "p.onnx", FAST, overwrite=True)
+    assert {p: p.read_bytes() for p in before} == before
+    assert json.loads((tmp_path / "p.rejected.verification.json").read_text())["passed"] is False
+    monkeypatch.setattr(ex, "_to_onnx", real)
+    export(runs["cartpole"], tmp_path / "p.onnx", FAST, overwrite=True)  # a passing export clears the failure
+    assert not (tmp_path / "p.rejected.verification.json").exists()
 
 
 def test_corrupt_and_mismatched_checkpoints_give_clear_errors(runs, tmp_path):
