@@ -96,11 +96,44 @@ def _check_continuation(system: System, settings: TrainSettings, ensemble: Param
     return float(final)
 
 
+LOCK_NAME = ".apg-run.lock"
+
+
+class _Claim:
+    """An exclusive claim on a run directory for as long as a run writes to it (an advisory ``flock`` on a lock
+    file: the kernel drops it when the process ends, however it ends, so a crash leaves no stale claim)."""
+
+    def __init__(self, run_dir: Path) -> None:
+        import fcntl
+
+        run_dir.mkdir(parents=True, exist_ok=True)
+        self.file = open(run_dir / LOCK_NAME, "a")  # noqa: SIM115 - held open until release()
+        try:
+            fcntl.flock(self.file.fileno(), fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except OSError:
+            self.file.close()
+            raise RunExistsError(f"another apg run is writing to {run_dir} right now; wait for it to finish, or "
+                                 f"choose another directory (hydra.run.dir=...). Nothing was changed.") from None
+
+    def release(self) -> None:
+        self.file.close()
+
+
+def _run_files(run_dir: Path) -> list[str]:
+    """The files in ``run_dir`` that mean a run is there (any of them, not only a checkpoint)."""
+    names = [n for n in (CHECKPOINT_NAME, METRICS_NAME, CONFIG_NAME) if (run_dir / n).exists()]
+    return names + sorted(p.name for p in run_dir.glob("events.out.tfevents.*"))[:1]
+
+
 def _open_run(run_dir: Path, record: RunRecord, resume: bool) -> dict[str, Any] | None:
     """Create or reopen ``run_dir``; returns the checkpoint to resume from, if any, after checking its record."""
     ckpt_path = run_dir / CHECKPOINT_NAME
     run_dir.mkdir(parents=True, exist_ok=True)
     saved = None
+    found = _run_files(run_dir)
+    if found and not ckpt_path.exists():
+        raise RunExistsError(f"{run_dir} already holds a run ({', '.join(found)}) without a checkpoint to resume "
+                             f"from; choose another directory (hydra.run.dir=...). Nothing was changed.")
     if ckpt_path.exists():
         if not resume:
             raise RunExistsError(f"{run_dir} already holds a run (checkpoint.pt); pass resume=true to continue "
@@ -171,6 +204,17 @@ def train_record(record: RunRecord, run_dir: Path | str, *, resume: bool = False
 
 def _loop(record: RunRecord, system: System, ensemble: ParameterRanges, update: Update, run_dir: Path,
           resume: bool, monitors: Sequence[Monitor], shard: Shard | None) -> TrainResult:
+    """Claim ``run_dir`` (rank 0) for the whole run, then train."""
+    claim = _Claim(run_dir) if (shard or distributed.SINGLE).main else None
+    try:
+        return _claimed_loop(record, system, ensemble, update, run_dir, resume, monitors, shard)
+    finally:
+        if claim is not None:
+            claim.release()
+
+
+def _claimed_loop(record: RunRecord, system: System, ensemble: ParameterRanges, update: Update, run_dir: Path,
+                  resume: bool, monitors: Sequence[Monitor], shard: Shard | None) -> TrainResult:
     settings, seed = record.train, record.seed
     if ensemble:
         ensemble.check(system)
@@ -248,6 +292,8 @@ def _loop(record: RunRecord, system: System, ensemble: ParameterRanges, update: 
             run_eval(0)
         if shard.main:
             consistent = snapshot(it)
+            if start == 0:  # from the first moment a run directory holds a run, it can be resumed
+                save_checkpoint(ckpt_path, consistent)
         stop = budget_spent()
         while it < settings.iterations and not stop:
             horizon = settings.horizon_at(it)

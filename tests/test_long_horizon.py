@@ -90,12 +90,15 @@ def test_truncation_bounds_the_gradient_on_an_unstable_system():
     the default 0.65 m arm sqrt(9.81 / 0.65) = 3.9 /s, so 60 steps of 0.04 s multiply a perturbation by ~1e4):
     the full-horizon gradient is orders of magnitude larger than the truncated one, whose chains span 5 steps."""
     system = envs.build("pendulum", task={"init_low": (-0.05, -0.05), "init_high": (0.05, 0.05)})
+    torch.manual_seed(0)  # the layers' default initialisation draws from the global stream: fix it
     policy = make_policy(PolicySettings(hidden=(8,), normalise="none", output_gain=1e-3), system,
                          torch.Generator().manual_seed(0), dtype=F64)
     x0 = system.sample_initial(8, torch.Generator().manual_seed(2), F64)
     full = _flat(Analytic().estimate(system, policy, x0, 60, torch.Generator()).grads).norm()
     cut = _flat(Analytic(EstimatorSettings(window=5)).estimate(system, policy, x0, 60, torch.Generator()).grads).norm()
-    assert full > 100 * cut, (float(full), float(cut))
+    # Measured 83-113x over global seeds 0-5 (the bob falls within the 2.4 s, which caps the growth): a margin of
+    # 30x still says "well over an order of magnitude", which a truncation that failed to cut would not give.
+    assert full > 30 * cut, (float(full), float(cut))
 
 
 def test_window_at_least_the_horizon_is_the_exact_gradient():

@@ -299,3 +299,40 @@ def test_ensemble_training_resumes_exactly(tmp_path):
         assert torch.equal(v, resumed.policy.state_dict()[k]), k
     plain = _train(tmp_path / "c", _settings(), seed=0, policy=PolicySettings(hidden=(16,)))
     assert not torch.equal(plain.policy.net[0].weight, straight.policy.net[0].weight)  # the ensemble mattered
+
+
+def test_a_run_directory_in_use_is_refused(tmp_path):
+    """Two runs in one directory would destroy each other: while one holds the directory's claim (an exclusive
+    flock, as a second process would see it), another is refused before it writes anything."""
+    from apg.train import _Claim
+
+    holder = _Claim(tmp_path)
+    try:
+        with pytest.raises(RunExistsError, match="another apg run is writing to"):
+            _train(tmp_path, _settings())
+        assert not (tmp_path / "config.yaml").exists() and not (tmp_path / "checkpoint.pt").exists()
+    finally:
+        holder.release()
+    _train(tmp_path, _settings(iterations=2))  # released: the directory is free again
+
+
+@pytest.mark.parametrize("left", ["metrics.json", "config.yaml", "events.out.tfevents.1.host"])
+def test_any_run_file_means_a_run_is_here(tmp_path, left):
+    """A finished run's files without its checkpoint are still a run: never overwritten, with or without resume."""
+    (tmp_path / left).write_text("a finished run's file\n")
+    for resume in (False, True):
+        with pytest.raises(RunExistsError, match=f"already holds a run.*{left}"):
+            _train(tmp_path, _settings(), resume=resume)
+    assert (tmp_path / left).read_text() == "a finished run's file\n"
+
+
+def test_a_run_is_resumable_from_its_first_moment(tmp_path):
+    """The checkpoint is written before the first iteration, so a run killed early resumes instead of leaving a
+    directory that can be neither resumed nor reused."""
+    straight = _train(tmp_path / "a", _settings(iterations=8, checkpoint_every=100))
+    with pytest.raises(RuntimeError, match="simulated"):
+        _train(tmp_path / "b", _settings(iterations=8, checkpoint_every=100), monitors=[_Crash(1)])
+    assert load_checkpoint(tmp_path / "b")["iteration"] == 0
+    resumed = _train(tmp_path / "b", _settings(iterations=8, checkpoint_every=100), resume=True)
+    for k, v in _params(straight.policy).items():
+        assert torch.equal(v, resumed.policy.state_dict()[k]), k
