@@ -15,8 +15,9 @@ diagnostics all call :func:`rollout`. Its options:
   sampled estimators and PPO, and the sensor noise, delay, actuator gain and pushes of apg-eval are all
   departures.
 
-Per step, in this order: ``seen = sense(x)``, ``mu = pi(observe(seen))``, ``u = actuate(mu)``, cost
-``c(x, u)``, ``x' = perturb(step(x, u))``. The terminal cost is taken at the last state.
+Per step, in this order: ``seen = sense(x)``, ``mu = pi(observe(seen))``, ``u = saturate(actuate(mu))`` (the
+actuators hold every action within its limits, whatever the policy commands), cost ``c(x, u)``,
+``x' = perturb(step(x, u))``. The terminal cost is taken at the last state.
 """
 
 from __future__ import annotations
@@ -140,8 +141,9 @@ class SampledActionNoise(Departure):
 
 
 def _step(system: System, policy: Act, x: Tensor) -> tuple[Tensor, Tensor, Tensor]:
-    """One undisturbed step: ``(x_next, u, running_cost)`` from ``x`` ``(B, state_dim)``."""
-    u = policy(system.observe(x))
+    """One undisturbed step: ``(x_next, u, running_cost)`` from ``x`` ``(B, state_dim)``; ``u`` is the command
+    as the actuators deliver it (within the limits)."""
+    u = system.saturate(policy(system.observe(x)))
     return system.step(x, u), u, system.running_cost(x, u)
 
 
@@ -164,7 +166,7 @@ def _stretch(step: Callable, system: System, policy: Act, x: Tensor, start: int,
             mu = u
         else:
             mu = policy(system.observe(departure.sense(x, k)))
-            u = departure.actuate(mu, k)
+            u = system.saturate(departure.actuate(mu, k))
             x, c = departure.perturb(system.step(x, u), k), system.running_cost(x, u)
         states.append(x)
         actions.append(u)

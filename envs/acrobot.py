@@ -63,11 +63,8 @@ class Acrobot(System):
     Params = AcrobotParams
     Task = AcrobotTask
     default_dt = 0.05
+    action_limits = ("torque_limit",)  # the Params field bounding each action, +-limit
     robustness_params = ("link_mass_1", "link_mass_2", "link_length_1", "link_length_2")  # not gravity or limits
-
-    @property
-    def action_bound(self) -> tuple[float, ...]:
-        return (float(self.params.torque_limit),)
 
     def acceleration(self, q: Tensor, qd: Tensor, u: Tensor) -> Tensor:
         p = self.params

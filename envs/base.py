@@ -159,6 +159,8 @@ class System(abc.ABC):
     Params: ClassVar[type]
     Task: ClassVar[type]
     default_dt: ClassVar[float]
+    action_limits: ClassVar[tuple[str, ...]]  # for each action, the Params field that bounds it (in its unit)
+    one_sided: ClassVar[bool] = False  # actions range over [0, limit] (thrusts) instead of [-limit, limit]
     robustness_params: ClassVar[tuple[str, ...]]
 
     def __init__(self, params: object | None = None, task: object | None = None, dt: float | None = None,
@@ -206,16 +208,21 @@ class System(abc.ABC):
 
     @property
     def action_low(self) -> tuple[float, ...]:
-        return tuple(-b for b in self.action_bound)
+        return tuple(0.0 if self.one_sided else -b for b in self.action_high)
 
     @property
     def action_high(self) -> tuple[float, ...]:
-        return tuple(self.action_bound)
+        return tuple(float(getattr(self.params, name)) for name in self.action_limits)
 
-    @property
-    def action_bound(self) -> tuple[float, ...]:
-        """Symmetric limits; systems with asymmetric limits override ``action_low``/``action_high``."""
-        raise NotImplementedError
+    def saturate(self, u: Tensor) -> Tensor:
+        """What the actuators deliver for the command ``u`` ``(B, action_dim)``: each action held within its
+        limits (per batch element where a limit parameter is a ``(B,)`` tensor). The closed loop applies it to
+        every command, whatever the policy; a squashed policy's actions are already inside and pass unchanged,
+        gradient included (``clamp`` passes the gradient on its closed interval)."""
+        hi = torch.stack([torch.as_tensor(getattr(self.params, name), dtype=u.dtype, device=u.device).expand(
+            u.shape[:-1]) for name in self.action_limits], dim=-1)  # (B, action_dim)
+        lo = torch.zeros_like(hi) if self.one_sided else -hi
+        return torch.clamp(u, lo, hi)
 
     def replace(self, **changes: object) -> "System":
         """A copy with some of ``params``, ``task``, ``dt`` or ``integrator`` replaced."""

@@ -57,11 +57,8 @@ class CartPole(System):
     Params = CartPoleParams
     Task = CartPoleTask
     default_dt = 0.05
+    action_limits = ("force_limit",)  # the Params field bounding each action, +-limit
     robustness_params = ("cart_mass", "pole_mass", "half_length")  # model error; not gravity or limits
-
-    @property
-    def action_bound(self) -> tuple[float, ...]:
-        return (float(self.params.force_limit),)
 
     def acceleration(self, q: Tensor, qd: Tensor, u: Tensor) -> Tensor:
         p = self.params

@@ -63,11 +63,8 @@ class Crane(System):
     Params = CraneParams
     Task = CraneTask
     default_dt = 0.1
+    action_limits = ("force_limit",)  # the Params field bounding each action, +-limit
     robustness_params = ("load_mass", "rope_length", "trolley_mass", "rolling_resistance")  # not gravity or limits
-
-    @property
-    def action_bound(self) -> tuple[float, ...]:
-        return (float(self.params.force_limit),)
 
     def acceleration(self, q: Tensor, qd: Tensor, u: Tensor) -> Tensor:
         p = self.params

@@ -54,11 +54,8 @@ class DoubleIntegrator(System):
     Params = DoubleIntegratorParams
     Task = DoubleIntegratorTask
     default_dt = 0.1
+    action_limits = ("force_limit",)  # the Params field bounding each action, +-limit
     robustness_params = ("mass",)  # the only physical parameter besides the force limit
-
-    @property
-    def action_bound(self) -> tuple[float, ...]:
-        return (float(self.params.force_limit),)
 
     def acceleration(self, q: Tensor, qd: Tensor, u: Tensor) -> Tensor:
         return (u[..., 0] / self.params.mass).unsqueeze(-1)  # a (B,) mass divides row-wise

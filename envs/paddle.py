@@ -94,13 +94,10 @@ class Paddle(System):
     Params = PaddleParams
     Task = PaddleTask
     default_dt = 0.004
+    action_limits = ("force_limit",)  # the Params field bounding each action, +-limit
     # Model error of the exhibit: both masses, and the ball's stiffness and damping, which with the masses set the
     # restitution (envs.contact.kelvin_voigt_restitution); the guide's friction; not gravity, size or the force limit.
     robustness_params = ("ball_mass", "paddle_mass", "contact_stiffness", "contact_damping", "guide_friction")
-
-    @property
-    def action_bound(self) -> tuple[float, ...]:
-        return (float(self.params.force_limit),)
 
     def gap(self, x: Tensor) -> Tensor:
         """Clearance between the ball's underside and the paddle (m), ``(B,)``; negative when squashed."""

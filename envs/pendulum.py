@@ -57,11 +57,8 @@ class Pendulum(System):
     Params = PendulumParams
     Task = PendulumTask
     default_dt = 0.04
+    action_limits = ("torque_limit",)  # the Params field bounding each action, +-limit
     robustness_params = ("mass", "length", "damping")  # model error of a real pendulum; not gravity or limits
-
-    @property
-    def action_bound(self) -> tuple[float, ...]:
-        return (float(self.params.torque_limit),)
 
     def acceleration(self, q: Tensor, qd: Tensor, u: Tensor) -> Tensor:
         p = self.params

@@ -106,13 +106,10 @@ class Pogo(System):
     Params = PogoParams
     Task = PogoTask
     default_dt = 0.003
+    action_limits = ("thrust_limit", "swing_limit")  # the Params field bounding each action, +-limit
     # Model error of the machine and its mat: the masses, the leg spring, and the mat's damping and friction, which
     # set how dead a landing is and how well the foot grips; not gravity, geometry or actuator limits.
     robustness_params = ("body_mass", "foot_mass", "leg_stiffness", "contact_damping", "friction_coefficient")
-
-    @property
-    def action_bound(self) -> tuple[float, ...]:
-        return (float(self.params.thrust_limit), float(self.params.swing_limit))
 
     def leg_force(self, q: Tensor, qd: Tensor, u: Tensor) -> Tensor:
         """The force of the leg (spring, damper and both actuators) on the body, ``(B, 2)``; the foot feels the

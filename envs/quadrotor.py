@@ -60,15 +60,9 @@ class Quadrotor(System):
     Params = QuadrotorParams
     Task = QuadrotorTask
     default_dt = 0.04
+    action_limits = ("thrust_limit", "thrust_limit")  # each rotor: from 0 to its thrust limit
+    one_sided = True
     robustness_params = ("mass", "inertia", "arm_length")  # model error; not gravity or limits
-
-    @property
-    def action_low(self) -> tuple[float, ...]:
-        return (0.0, 0.0)
-
-    @property
-    def action_high(self) -> tuple[float, ...]:
-        return (float(self.params.thrust_limit),) * 2
 
     @property
     def hover_thrust(self) -> float:

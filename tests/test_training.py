@@ -188,7 +188,8 @@ def test_resume_refuses_another_plant(tmp_path):
 
 
 def test_non_finite_rollout_stops_with_iteration_and_keeps_last_checkpoint(tmp_path):
-    system = envs.build("double_integrator")
+    # An actuator that saturates keeps the sled finite; a limit of 1e30 N lets a diverging linear policy overflow.
+    system = envs.build("double_integrator", params={"force_limit": 1e30})
     with pytest.raises(NonFiniteError, match=r"iteration \d+.*optim.lr.*system.dt") as err:
         train(system, LINEAR, OptimSettings(name="sgd", lr=1e4, schedule="constant"), Analytic(),
               TrainSettings(iterations=50, batch_size=8, horizon=50, grad_clip=0.0, checkpoint_every=1, **QUIET),
@@ -336,3 +337,19 @@ def test_a_run_is_resumable_from_its_first_moment(tmp_path):
     resumed = _train(tmp_path / "b", _settings(iterations=8, checkpoint_every=100), resume=True)
     for k, v in _params(straight.policy).items():
         assert torch.equal(v, resumed.policy.state_dict()[k]), k
+
+
+def test_the_plant_saturates_every_policy_at_its_limits(tmp_path):
+    """An unsquashed linear policy may command any force; the actuator delivers at most its limit, so the
+    simulated force, the cost and the state all see the saturated action (a 2 N drive: u = -40 x clips at +-2 N)."""
+    system = envs.build("double_integrator", params={"force_limit": 2.0})
+    policy = make_policy(LINEAR, system)
+    with torch.no_grad():
+        policy.net[0].weight.copy_(torch.tensor([[-40.0, -40.0]]))
+    x0 = torch.tensor([[1.0, 0.0], [-1.0, 0.0], [0.01, 0.0]])
+    traj = rollout(system, policy, x0, 3)
+    assert traj.actions[0, :, 0].tolist() == pytest.approx([-2.0, 2.0, -0.4])
+    assert (traj.actions.abs() <= 2.0).all()
+    # the first step against the exact zero-order-hold model with the clipped force (m = 1 kg, dt = 0.1 s)
+    dt = system.dt
+    assert traj.states[1, 0].tolist() == pytest.approx([1.0 - 2.0 * dt * dt / 2, -2.0 * dt], rel=1e-6)
