@@ -200,9 +200,10 @@ TINY = ["progress=false", "train.horizon=8", "train.eval_batch=16", "study.batch
         "race.only=[analytic,es,ppo]", "race.entrants.es.estimator.pairs=2", "race.entrants.ppo.ppo.epochs=1"]
 
 
-def test_compare_writes_the_documented_run_directory(tmp_path):
+def test_compare_writes_the_documented_run_directory(tmp_path, caplog):
+    # the one subprocess of apg-compare: exit status, the log on stdout, the files
     run = tmp_path / "cmp"
-    env = {**os.environ, "HYDRA_FULL_ERROR": "0"}
+    env = {**os.environ, "HYDRA_FULL_ERROR": "0", "OMP_NUM_THREADS": "1"}
     cmd = [sys.executable, "-m", "apg.cli.compare", *TINY, f"hydra.run.dir={run}"]
     out = subprocess.run(cmd, cwd=tmp_path, env=env, capture_output=True, text=True, timeout=300)
     assert out.returncode == 0, out.stderr
@@ -220,5 +221,23 @@ def test_compare_writes_the_documented_run_directory(tmp_path):
     events.Reload()
     assert "race/steps/es/seed0/heldout_cost_vs_env_steps" in events.Tags()["scalars"]
     assert "study/H8/es/rel_error" in events.Tags()["scalars"]
-    again = subprocess.run(cmd, cwd=tmp_path, env=env, capture_output=True, text=True, timeout=300)
-    assert again.returncode != 0 and "already holds" in again.stderr
+    # a second run into the same directory, in this process: the entry's own function (what @hydra.main wraps)
+    # on the config composed with Hydra's runtime state pointing at the finished run
+    from hydra.core.hydra_config import HydraConfig
+    from omegaconf import open_dict
+
+    from apg.cli import compare as compare_cli
+
+    with initialize_config_dir(config_dir=CONFIG_DIR, version_base="1.3"):
+        cfg = compose(config_name="compare", overrides=TINY, return_hydra_config=True)
+    with open_dict(cfg):
+        cfg.hydra.runtime.output_dir = str(run)
+    HydraConfig.instance().set_config(cfg)
+    with open_dict(cfg):
+        del cfg["hydra"]
+    try:
+        with pytest.raises(SystemExit) as info:
+            compare_cli.main.__wrapped__(cfg)
+    finally:
+        HydraConfig.instance().cfg = None  # later tests start as Hydra would
+    assert info.value.code == 2 and "already holds" in caplog.text

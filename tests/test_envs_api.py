@@ -17,17 +17,17 @@ NAMES = envs.available()
 DTYPES = [torch.float32, torch.float64]
 INTEGRATORS = ["rk4", "semi_implicit_euler"]
 
-# per system: a mass-like field and another positive field, both must be > 0
-POSITIVE_FIELDS = {
-    "double_integrator": ("mass", "force_limit"),
-    "pendulum": ("mass", "length"),
-    "cartpole": ("cart_mass", "half_length"),
-    "acrobot": ("link_mass_1", "com_2"),
-    "quadrotor": ("mass", "arm_length"),
-    "crane": ("trolley_mass", "rope_length"),
-    "pogo": ("body_mass", "leg_rest_length"),
-    "paddle": ("ball_mass", "contact_stiffness"),
-}
+
+
+def bounded_fields(name: str, bound: str, part: str = "Params") -> list[str]:
+    """The fields of a system's record that declare ``bound`` ("positive" or "nonnegative") in their metadata."""
+    record = getattr(envs.system_class(name), part)
+    return [f.name for f in dataclasses.fields(record) if f.metadata.get("bound") == bound]
+
+
+def has_hold_time(name: str) -> bool:
+    """Whether the task asks for the goal to be held (a ``hold_time`` field in the Task record)."""
+    return any(f.name == "hold_time" for f in dataclasses.fields(envs.system_class(name).Task))
 
 
 def inputs(system, n: int, dtype: torch.dtype, seed: int = 0):
@@ -42,9 +42,19 @@ def inputs(system, n: int, dtype: torch.dtype, seed: int = 0):
 # ---------------------------------------------------------------------------------------------------------------
 # registry
 # ---------------------------------------------------------------------------------------------------------------
-def test_available_lists_all_eight_systems():
-    assert envs.available() == ("acrobot", "cartpole", "crane", "double_integrator", "paddle", "pendulum", "pogo",
-                                "quadrotor")
+def test_available_lists_every_registered_system_with_its_config():
+    assert envs.available() == tuple(sorted(envs.SYSTEMS)) and len(envs.available()) >= 8
+    # each registered system has its config group file (step 3 of "Adding a system" in DEVELOPERS.md); other files
+    # there are variants that name a registered system (``name: cartpole`` in cartpole_hanging.yaml)
+    from pathlib import Path
+
+    import yaml
+
+    configs = sorted((Path(__file__).resolve().parents[1] / "configs" / "system").glob("*.yaml"))
+    assert set(envs.available()) <= {p.stem for p in configs}
+    for path in configs:
+        named = (yaml.safe_load(path.read_text()) or {}).get("name", path.stem)
+        assert named in envs.SYSTEMS, f"{path.name} configures {named!r}, not a registered system"
     for name in envs.available():
         system = envs.build(name)
         assert system.name == name and isinstance(system, envs.System)
@@ -74,27 +84,29 @@ def test_make_unknown_key_is_named(name, what):
 
 
 @pytest.mark.parametrize("name", NAMES)
-def test_negative_or_zero_mass_is_rejected_naming_the_field(name):
-    field = POSITIVE_FIELDS[name][0]
-    for bad in (-1.0, 0.0):
-        with pytest.raises(ValueError, match=rf"params\.{field} must be > 0"):
-            envs.build(name, params={field: bad})
-    # ... also when built from the record directly, and when one entry of a per-batch tensor is bad
+def test_negative_or_zero_positive_parameter_is_rejected_naming_the_field(name):
+    fields = bounded_fields(name, "positive")
+    assert fields, f"{name}.Params declares no positive field (a mass, a length)"
     cls = envs.system_class(name)
-    with pytest.raises(ValueError, match=rf"^{field} must be > 0"):
-        cls.Params(**{field: -2.0})
-    with pytest.raises(ValueError, match=rf"^{field} must be > 0"):
-        dataclasses.replace(cls.Params(), **{field: torch.tensor([1.0, -1.0, 2.0])})
+    for field in fields:
+        for bad in (-1.0, 0.0):
+            with pytest.raises(ValueError, match=rf"params\.{field} must be > 0"):
+                envs.build(name, params={field: bad})
+        # ... also when built from the record directly, and when one entry of a per-batch tensor is bad
+        with pytest.raises(ValueError, match=rf"^{field} must be > 0"):
+            cls.Params(**{field: -2.0})
+        with pytest.raises(ValueError, match=rf"^{field} must be > 0"):
+            dataclasses.replace(cls.Params(), **{field: torch.tensor([1.0, -1.0, 2.0])})
 
 
 @pytest.mark.parametrize("bad", [math.nan, math.inf, -math.inf])
 @pytest.mark.parametrize("name", NAMES)
 def test_non_finite_parameter_is_rejected_naming_the_field(name, bad):
-    field = POSITIVE_FIELDS[name][1]
-    with pytest.raises(ValueError, match=rf"params\.{field} must be finite"):
-        envs.build(name, params={field: bad})
-    with pytest.raises(ValueError, match=rf"^{field} must be finite"):
-        dataclasses.replace(envs.system_class(name).Params(), **{field: torch.tensor([1.0, bad])})
+    for field in bounded_fields(name, "positive") + bounded_fields(name, "nonnegative"):
+        with pytest.raises(ValueError, match=rf"params\.{field} must be finite"):
+            envs.build(name, params={field: bad})
+        with pytest.raises(ValueError, match=rf"^{field} must be finite"):
+            dataclasses.replace(envs.system_class(name).Params(), **{field: torch.tensor([1.0, bad])})
 
 
 def test_nonnegative_fields_accept_zero_and_reject_negative():
@@ -255,7 +267,9 @@ def test_sample_initial_follows_a_changed_task_box():
 # success
 # ---------------------------------------------------------------------------------------------------------------
 def goal_and_failure_states(system) -> tuple[list[float], list[float]]:
-    """A state that meets the task when held for the whole trajectory, and one that does not."""
+    """A state that meets the task when held for the whole trajectory, and one that does not.
+
+    Per-system reference data, written from each task's definition (not read from the system under test)."""
     if system.name == "quadrotor":
         tx, tz = system.task.target
         return [tx, tz, 0.0, 0.0, 0.0, 0.0], [tx, tz - 1.0, 0.0, 0.0, 0.0, 0.0]  # at the hover point vs 1 m low
@@ -267,12 +281,16 @@ def goal_and_failure_states(system) -> tuple[list[float], list[float]]:
     if system.name == "paddle":
         # in flight at the apex height vs lying on the paddle (never flying)
         return [system.task.target, 0.0, 0.0, 0.0], [system.params.ball_radius, 0.0, 0.0, 0.0]
-    return {
+    table = {
         "double_integrator": ([0.0, 0.0], [1.0, 0.0]),
         "pendulum": ([0.0, 0.0], [math.pi, 0.0]),  # upright vs hanging
         "cartpole": ([0.0, 0.0, 0.0, 0.0], [0.0, math.pi, 0.0, 0.0]),
         "acrobot": ([math.pi, 0.0, 0.0, 0.0], [0.0, 0.0, 0.0, 0.0]),  # tip 2 m above the shoulder vs hanging
-    }[system.name]
+    }
+    if system.name not in table:
+        pytest.fail(f"no goal and failure state for {system.name!r}: add them to goal_and_failure_states from the "
+                    f"task's definition")
+    return table[system.name]
 
 
 @pytest.mark.parametrize("name", NAMES)
@@ -286,7 +304,7 @@ def test_success_is_a_bool_per_trajectory_and_means_something(name):
     assert ok.dtype == torch.bool and ok.shape == (2,)
     assert ok.tolist() == [True, False]
     # tasks with a hold time: reaching the goal only at the very last state is not holding it
-    if name in ("pendulum", "cartpole", "quadrotor", "crane", "pogo", "paddle"):
+    if has_hold_time(name):
         late = states[:, 1:].clone()
         late[-1] = torch.tensor(good, dtype=torch.float64)
         assert system.success(late, actions[:, 1:]).tolist() == [False]

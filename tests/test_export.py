@@ -256,17 +256,25 @@ def test_foreign_or_corrupt_onnx_is_refused(tmp_path):
         read_metadata(tmp_path / "foreign.onnx")
 
 
-def test_cli_export_and_its_errors(runs, tmp_path):
-    env = {**os.environ, "HYDRA_FULL_ERROR": "0"}
+def test_cli_export_and_its_errors(runs, tmp_path, caplog):
+    # the one subprocess of apg-export: exit status, logging to stderr, no Hydra output directory
+    env = {**os.environ, "HYDRA_FULL_ERROR": "0", "OMP_NUM_THREADS": "1"}
     cmd = [sys.executable, "-m", "apg.cli.export", f"source={runs['crane']}", f"output={tmp_path / 'c.onnx'}",
            "export.observations=1024", "export.rollouts=16"]
     ok = subprocess.run(cmd, cwd=tmp_path, env=env, capture_output=True, text=True, timeout=120)
     assert ok.returncode == 0, ok.stderr
     assert (tmp_path / "c.onnx").exists() and "output parity" in ok.stderr
     assert not (tmp_path / "outputs").exists()  # Hydra writes nothing of its own
-    bad = subprocess.run([*cmd[:3], f"source={tmp_path / 'none'}"], cwd=tmp_path, env=env, capture_output=True,
-                         text=True, timeout=120)
-    assert bad.returncode == 2 and f"no checkpoint at {tmp_path / 'none'}" in bad.stderr
+    # the error path in this process: the entry's own function (what @hydra.main wraps) on the composed config
+    from hydra import compose, initialize_config_dir
+
+    from apg.cli import export as export_cli
+
+    with initialize_config_dir(config_dir=export_cli.CONFIG_DIR, version_base="1.3"):
+        cfg = compose(config_name="export", overrides=[f"source={tmp_path / 'none'}", f"output={tmp_path / 'n.onnx'}"])
+    with pytest.raises(SystemExit) as info:
+        export_cli.main.__wrapped__(cfg)
+    assert info.value.code == 2 and f"no checkpoint at {tmp_path / 'none'}" in caplog.text
     with pytest.raises(FileExistsError, match="overwrite=true"):
         export(runs["crane"], tmp_path / "c.onnx", FAST)
     with pytest.raises(ValueError, match="opset must be between 15 and 23"):
