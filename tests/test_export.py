@@ -155,11 +155,8 @@ def test_a_cli_run_exports_and_evaluates_on_its_own_plant(tmp_path):
     assert stated["torque_limit"] == evaluated["torque_limit"] == 5.0
 
 
-def test_failed_verification_is_an_error_and_writes_no_file(runs, tmp_path, monkeypatch):
-    """A graph that differs from the policy (its last bias shifted by 1 % of the range) must be refused."""
-    import apg.export as ex
-
-    real = ex._to_onnx
+def _tampered(real):
+    """``_to_onnx`` writing a graph whose last bias is shifted by 1 % of the range: it must fail verification."""
 
     def tampered(policy, obs_dim, opset):
         bad = __import__("copy").deepcopy(policy)
@@ -167,7 +164,14 @@ def test_failed_verification_is_an_error_and_writes_no_file(runs, tmp_path, monk
             bad.net[-1].bias += 0.02
         return real(bad, obs_dim, opset)
 
-    monkeypatch.setattr(ex, "_to_onnx", tampered)
+    return tampered
+
+
+def test_failed_verification_is_an_error_and_writes_no_file(runs, tmp_path, monkeypatch):
+    """A graph that differs from the policy (its last bias shifted by 1 % of the range) must be refused."""
+    import apg.export as ex
+
+    monkeypatch.setattr(ex, "_to_onnx", _tampered(ex._to_onnx))
     with pytest.raises(VerificationError, match="failed verification"):
         export(runs["cartpole"], tmp_path / "bad.onnx", FAST)
     assert not (tmp_path / "bad.onnx").exists() and not (tmp_path / "bad.verification.json").exists()
@@ -183,14 +187,7 @@ def test_a_failed_re_export_keeps_the_verified_file(runs, tmp_path, monkeypatch)
     good = export(runs["cartpole"], tmp_path / "p.onnx", FAST)
     before = {p: p.read_bytes() for p in (good.onnx_path, good.report_path)}
     real = ex._to_onnx
-
-    def tampered(policy, obs_dim, opset):
-        bad = __import__("copy").deepcopy(policy)
-        with torch.no_grad():
-            bad.net[-1].bias += 0.02
-        return real(bad, obs_dim, opset)
-
-    monkeypatch.setattr(ex, "_to_onnx", tampered)
+    monkeypatch.setattr(ex, "_to_onnx", _tampered(real))
     with pytest.raises(VerificationError, match="p.onnx and its record are kept unchanged.*rejected"):
         export(runs["cartpole"], tmp_path / "p.onnx", FAST, overwrite=True)
     assert {p: p.read_bytes() for p in before} == before
