@@ -18,8 +18,8 @@ and regularised Coulomb friction (``N`` and ``T`` below, on body ``b`` and foot 
     m (xdd + fxdd, zdd + fzdd)  = -F_a n - u_swing t + (T_f, N_f) - m g e_z
 
 This is the spring-loaded inverted pendulum of legged locomotion (Blickhan 1989, "The spring-mass model for
-running and hopping", J. Biomech. 22) with a foot mass, in the spirit of Raibert's planar hopper (Raibert, *Legged
-Robots That Balance*, 1986; a hip torque there, a transverse force here). The default numbers describe the
+running and hopping", J. Biomech. 22) with a foot mass, in the spirit of Raibert's planar one-legged machine
+(Raibert, *Legged Robots That Balance*, 1986; a hip torque there, a transverse force here). The default numbers describe the
 invented Larkspur Science Hall's pogo robot, which hops from its start spot to a mark 1 m away on a rubber mat.
 Standing still is an equilibrium (tested), but an unstable one, as for any inverted pendulum: the policy has to
 balance as well as hop, and falling over (the body's disc on the mat) is the typical failure.

@@ -270,7 +270,7 @@ def test_pogo_leg_oscillates_at_the_two_body_frequency_in_flight():
 
 
 def pogo_rhs_absolute(p: PogoParams):
-    """The hopper in absolute coordinates (body b, foot f), written here from the module docstring's model: the
+    """The pogo robot in absolute coordinates (body b, foot f), written here from the module docstring's model: the
     leg's spring, damper and thrust act along e = (b - f) / |b - f| with magnitude
     k_l (l0 - l) - c_l l' + u_1, the swing actuator along (e_z, -e_x), foot and body on the mat through the
     smoothed Kelvin-Voigt force and tanh friction."""
@@ -425,7 +425,7 @@ def test_default_time_steps_resolve_the_contacts(integrator):
 @pytest.mark.parametrize("integrator", sorted(INTEGRATORS))
 def test_paddle_free_flight_and_free_paddle_match_closed_forms(integrator):
     # Ball far above the paddle: z(t) = z0 + v0 t - g t^2 / 2 (semi-implicit Euler: g t (t + dt) / 2, as for the
-    # hopper). Paddle under a constant force u with guide friction b: M p'' = u - b p', so
+    # pogo robot). Paddle under a constant force u with guide friction b: M p'' = u - b p', so
     # p'(t) = u / b + (p'0 - u / b) e^(-b t / M), p(t) = p0 + u t / b + (p'0 - u / b) M / b (1 - e^(-b t / M)).
     system = envs.build("paddle", integrator=integrator)
     p = system.params
