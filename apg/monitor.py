@@ -10,6 +10,7 @@ from typing import Any
 from apg.diagnostics import GradientProfile
 from apg.reports.figures import profile_figure, trajectory_figure
 from apg.rollout import Evaluation
+from apg.runs import flatten
 from apg.train import Monitor, RunInfo
 
 # TensorBoard tags, in one place so docs and tests name the same strings.
@@ -39,19 +40,6 @@ TAGS = {
 REWARN_FACTOR = 10.0
 
 log = logging.getLogger("apg.train")
-
-
-def _flatten(d: dict[str, Any], prefix: str = "") -> dict[str, Any]:
-    out: dict[str, Any] = {}
-    for k, v in d.items():
-        key = f"{prefix}{k}"
-        if isinstance(v, dict):
-            out.update(_flatten(v, key + "."))
-        elif isinstance(v, (int, float, str, bool)):
-            out[key] = v
-        else:
-            out[key] = str(v)
-    return out
 
 
 class TensorBoardMonitor(Monitor):
@@ -87,7 +75,8 @@ class TensorBoardMonitor(Monitor):
         self.writer.add_figure(TAGS["gradient_profile"], profile_figure(profile), it, close=True)
 
     def end(self, metrics: dict[str, Any]) -> None:
-        hparams = _flatten(self.run.record.to_dict())
+        hparams = {k: v if isinstance(v, (int, float, str, bool)) else str(v)
+                   for k, v in flatten(self.run.record.to_dict()).items()}
         finals = {f"final/{k}": float(metrics[k]) for k in ("eval_cost", "success_rate", "wall_time_s")}
         self.writer.add_hparams(hparams, finals, run_name="hparams")
 

@@ -140,10 +140,10 @@ class SampledActionNoise(Departure):
         return torch.clamp(drawn, self.low, self.high)
 
 
-def _step(system: System, policy: Act, x: Tensor) -> tuple[Tensor, Tensor, Tensor]:
+def _step(system: System, policy: Act, x: Tensor, limits: tuple[Tensor, Tensor]) -> tuple[Tensor, Tensor, Tensor]:
     """One undisturbed step: ``(x_next, u, running_cost)`` from ``x`` ``(B, state_dim)``; ``u`` is the command
-    as the actuators deliver it (within the limits)."""
-    u = system.saturate(policy(system.observe(x)))
+    as the actuators deliver it (within ``limits``, :meth:`System.actuator_range`)."""
+    u = system.saturate(policy(system.observe(x)), limits)
     return system.step(x, u), u, system.running_cost(x, u)
 
 
@@ -154,19 +154,19 @@ def _compiled_step() -> Callable[..., tuple[Tensor, Tensor, Tensor]]:
     return torch.compile(_step)
 
 
-def _stretch(step: Callable, system: System, policy: Act, x: Tensor, start: int, steps: int,
-             departure: Departure | None, keep: bool) -> tuple[Tensor, ...]:
+def _stretch(step: Callable, system: System, policy: Act, x: Tensor, limits: tuple[Tensor, Tensor], start: int,
+             steps: int, departure: Departure | None, keep: bool) -> tuple[Tensor, ...]:
     """``steps`` steps from ``x`` at step index ``start``: the states after each step ``(steps, B, n)``, applied
     and commanded actions, running costs, and (with ``keep``) the lists of state and action tensors."""
     states, actions, commanded, costs, seen_states = [], [], [], [], []
     for k in range(start, start + steps):
         seen_states.append(x)
         if departure is None:
-            x, u, c = step(system, policy, x)
+            x, u, c = step(system, policy, x, limits)
             mu = u
         else:
             mu = policy(system.observe(departure.sense(x, k)))
-            u = system.saturate(departure.actuate(mu, k))
+            u = system.saturate(departure.actuate(mu, k), limits)
             x, c = departure.perturb(system.step(x, u), k), system.running_cost(x, u)
         states.append(x)
         actions.append(u)
@@ -204,6 +204,7 @@ def rollout(system: System, policy: Act, x0: Tensor, horizon: int, *, window: in
         raise ValueError("recompute_every cannot be used with a departure that draws random numbers: the "
                          "recomputed steps would draw different ones; precompute the noise (ActionNoise)")
     step = _compiled_step() if compile and departure is None else _step
+    limits = system.actuator_range(x0.shape[0], x0.dtype, x0.device)  # once per rollout, not per step
     parts, ends, x, done = [], [], x0, 0
     while done < horizon:
         # The next stretch ends at the next window boundary, recomputation boundary or the horizon.
@@ -216,9 +217,9 @@ def rollout(system: System, policy: Act, x0: Tensor, horizon: int, *, window: in
             ends.append(x)
             x = x.detach()
         if recompute and k < horizon:
-            part = checkpoint(_stretch, step, system, policy, x, done, k, departure, False, use_reentrant=False)
+            part = checkpoint(_stretch, step, system, policy, x, limits, done, k, departure, False, use_reentrant=False)
         else:
-            part = _stretch(step, system, policy, x, done, k, departure, keep_steps)
+            part = _stretch(step, system, policy, x, limits, done, k, departure, keep_steps)
         parts.append(part)
         x, done = part[0][-1], done + k
     states = torch.cat([x0[None], *(p[0] for p in parts)])  # (T+1, B, state_dim)

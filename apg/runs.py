@@ -266,24 +266,20 @@ class RunRecord:
     def differences(self, other: "RunRecord") -> list[tuple[str, Any, Any]]:
         """``(key, this value, other value)`` for every setting that differs, runtime fields and the code version
         excepted, in key order."""
-        a, b = _flatten(self.to_dict()), _flatten(other.to_dict())
+        a, b = flatten(self.to_dict()), flatten(other.to_dict())
         skip = {"code_version", *RUNTIME_FIELDS}
         return [(k, a.get(k), b.get(k)) for k in sorted(set(a) | set(b)) if k not in skip and a.get(k) != b.get(k)]
 
 
-def _flatten(d: Mapping[str, Any], prefix: str = "") -> dict[str, Any]:
+def flatten(d: Mapping[str, Any], prefix: str = "") -> dict[str, Any]:
+    """``{"train.horizon": 60, ...}`` from a nested mapping (empty mappings kept as values)."""
     out: dict[str, Any] = {}
     for k, v in d.items():
         if isinstance(v, Mapping) and v:
-            out.update(_flatten(v, f"{prefix}{k}."))
+            out.update(flatten(v, f"{prefix}{k}."))
         else:
             out[f"{prefix}{k}"] = v
     return out
-
-
-def flatten(d: Mapping[str, Any]) -> dict[str, Any]:
-    """``{"train.horizon": 60, ...}`` from a nested mapping (empty mappings kept as values)."""
-    return _flatten(d)
 
 
 def record_yaml(record: RunRecord) -> str:

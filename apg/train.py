@@ -35,7 +35,6 @@ from apg.rollout import Evaluation, evaluate
 from apg.runs import (CONFIG_NAME, DTYPES, METRICS_NAME, RunExistsError, RunRecord, SystemSpec, TrainSettings,
                       record_yaml)
 from apg.updates import NonFiniteError, PPOSettings, Update, make_update
-from apg.updates.gradient import GradientUpdate
 from envs.base import System
 
 log = logging.getLogger(__name__)
@@ -262,12 +261,15 @@ def _claimed_loop(record: RunRecord, system: System, ensemble: ParameterRanges, 
     def elapsed() -> float:
         return wall_before + time.perf_counter() - t_start
 
+    record_dict = record.to_dict()  # constant for the run; never mutated
+
     def snapshot(iteration: int) -> dict[str, Any]:
         """Everything a resume needs, copied: the state after ``iteration`` completed iterations."""
-        return copy.deepcopy({
-            "record": record.to_dict(), "iteration": iteration, "policy": policy.state_dict(),
-            "update": update.state_dict(), "generator": train_gen.get_state(), "torch_rng": torch.get_rng_state(),
-            "env_steps": env_steps, "wall_time_s": elapsed(), "last_eval": last_eval})
+        state = copy.deepcopy({
+            "iteration": iteration, "policy": policy.state_dict(), "update": update.state_dict(),
+            "generator": train_gen.get_state(), "torch_rng": torch.get_rng_state(), "env_steps": env_steps,
+            "wall_time_s": elapsed(), "last_eval": last_eval})
+        return {"record": record_dict, **state}
 
     def run_eval(iteration: int) -> None:
         nonlocal last_eval
@@ -375,4 +377,4 @@ def _claimed_loop(record: RunRecord, system: System, ensemble: ParameterRanges, 
 
 
 __all__ = ["TrainSettings", "train", "train_record", "Monitor", "RunInfo", "TrainResult", "RunExistsError",
-           "NonFiniteError", "GradientUpdate"]
+           "NonFiniteError"]

@@ -214,14 +214,19 @@ class System(abc.ABC):
     def action_high(self) -> tuple[float, ...]:
         return tuple(float(getattr(self.params, name)) for name in self.action_limits)
 
-    def saturate(self, u: Tensor) -> Tensor:
+    def actuator_range(self, batch: int, dtype: torch.dtype, device: torch.device | str = "cpu") -> tuple[Tensor, Tensor]:
+        """The lowest and highest action each actuator delivers, ``(batch, action_dim)`` each (per batch element
+        where a limit parameter is a ``(B,)`` tensor)."""
+        hi = torch.stack([torch.as_tensor(getattr(self.params, name), dtype=dtype, device=device).expand(batch)
+                          for name in self.action_limits], dim=-1)  # (B, action_dim)
+        return (torch.zeros_like(hi) if self.one_sided else -hi), hi
+
+    def saturate(self, u: Tensor, limits: tuple[Tensor, Tensor] | None = None) -> Tensor:
         """What the actuators deliver for the command ``u`` ``(B, action_dim)``: each action held within its
-        limits (per batch element where a limit parameter is a ``(B,)`` tensor). The closed loop applies it to
+        limits (``limits`` from :meth:`actuator_range`, computed here if not given). The closed loop applies it to
         every command, whatever the policy; a squashed policy's actions are already inside and pass unchanged,
         gradient included (``clamp`` passes the gradient on its closed interval)."""
-        hi = torch.stack([torch.as_tensor(getattr(self.params, name), dtype=u.dtype, device=u.device).expand(
-            u.shape[:-1]) for name in self.action_limits], dim=-1)  # (B, action_dim)
-        lo = torch.zeros_like(hi) if self.one_sided else -hi
+        lo, hi = limits if limits is not None else self.actuator_range(u.shape[0], u.dtype, u.device)
         return torch.clamp(u, lo, hi)
 
     def replace(self, **changes: object) -> "System":
